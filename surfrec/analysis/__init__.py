@@ -1,0 +1,1 @@
+"""Wave analysis of height time series: spectra, dispersion, cylindrical modes."""

@@ -1,0 +1,1 @@
+"""Overnight batch runs: chunking, executors (local pool, Dask), journal and resume."""

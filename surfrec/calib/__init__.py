@@ -1,0 +1,1 @@
+"""Stereo rig calibration: target detection, intrinsics and stereo pose, rectification, drift check."""

@@ -1,0 +1,1 @@
+"""Triangulation, the datum frame, and resampling onto the world grid."""

@@ -1,0 +1,1 @@
+"""Speckle correlation matching between the rectified views (ZNCC search, sub-pixel refinement)."""

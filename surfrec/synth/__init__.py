@@ -1,0 +1,1 @@
+"""Synthetic stereo speckle runs: surface shapes and rendering (filled in by the lead)."""

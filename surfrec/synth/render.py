@@ -1,0 +1,322 @@
+"""Physically based rendering of the synthetic camera images.
+
+Per camera pixel the renderer supersamples the pixel area, and for each
+sample ray:
+
+1. intersects the ray with the water surface z = h(x, y, t) by fixed-point
+   iteration from the still-water plane (the map contracts because the
+   surface slope times the ray's obliquity is far below one);
+2. tests whether the ray meets the opaque post first (a vertical cylinder),
+   and whether the post shades the surface point from the projector;
+3. projects the surface point into the projector and samples the speckle
+   pattern (cubic spline, so the pattern is a smooth continuous function of
+   position, the same for both cameras);
+4. forms the radiance of a Lambertian screen lit by a pinhole projector:
+   E ∝ pattern · cos(incidence) · (Z0 / r)^2 / cos^3(projector off-axis angle)
+   (a pinhole projector lights a parallel plane uniformly), plus ambient light;
+5. multiplies by the camera's natural vignetting cos^4 (off-axis angle).
+
+The supersampled radiance is blurred by a Gaussian lens PSF, averaged over
+each pixel's area (box integration), turned into electrons with shot and
+read noise, and quantised. The steps are written by hand because no library
+renders a height field through a distorted camera; each uses numpy/OpenCV
+primitives for the heavy work.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import cv2
+import numpy as np
+from scipy import ndimage
+
+from surfrec.synth.cameras import Camera, Projector
+
+
+@dataclass
+class Post:
+    """An opaque vertical cylinder standing in the water (world mm)."""
+
+    centre: tuple[float, float]
+    radius: float
+    top: float  # height of its top above still water, mm
+
+    def contains(self, x, y):
+        """True for world points (mm) inside the post's footprint."""
+        return (x - self.centre[0]) ** 2 + (y - self.centre[1]) ** 2 < self.radius ** 2
+
+    def to_dict(self):
+        return {"centre_mm": list(map(float, self.centre)), "radius_mm": float(self.radius), "top_mm": float(self.top)}
+
+
+@dataclass
+class SensorModel:
+    """Camera optics and sensor: PSF, noise and quantisation.
+
+    Attributes
+    ----------
+    psf_sigma_px : Gaussian lens PSF, 1-sigma in px.
+    full_well_e : electrons at full scale.
+    read_noise_e : read noise, electrons RMS.
+    black_level : offset as a fraction of full scale.
+    bits : effective bit depth of the data (8, 10, 12, 16).
+    container_bits : stored bit depth (8 or 16).
+    supersample : samples per pixel along each axis.
+    """
+
+    psf_sigma_px: float = 0.6
+    full_well_e: float = 10000.0
+    read_noise_e: float = 12.0
+    black_level: float = 0.02
+    bits: int = 8
+    container_bits: int = 8
+    supersample: int = 3
+
+    def to_dict(self):
+        return dict(self.__dict__)
+
+
+@dataclass
+class Lighting:
+    """Radiometry of the scene, as fractions of the sensor's full scale."""
+
+    exposure: float = 0.75        # pattern value 1 on a plane facing the projector
+    ambient: float = 0.06         # room light on the water
+    post_radiance: float = 0.05   # matte dark post: uniform, no speckle on it
+    board_white: float = 0.85
+    board_black: float = 0.07
+    board_background: float = 0.22
+
+    def to_dict(self):
+        return dict(self.__dict__)
+
+
+class RayBundle:
+    """The sample rays of one camera, computed once and reused for every frame.
+
+    Rays are stored as world slopes (dx/dz, dy/dz) from the camera centre,
+    which makes the point at any height one multiply-add away.
+    """
+
+    def __init__(self, camera: Camera, supersample: int):
+        w, h = camera.image_size
+        s = int(supersample)
+        offsets = (np.arange(s) + 0.5) / s - 0.5
+        u = (np.arange(w)[:, None] + offsets[None, :]).ravel()
+        v = (np.arange(h)[:, None] + offsets[None, :]).ravel()
+        uu, vv = np.meshgrid(u, v)
+        d = camera.pixel_rays(uu, vv)
+        if np.any(d[..., 2] >= 0):
+            raise ValueError("every camera ray must point down toward the water")
+        self.camera = camera
+        self.supersample = s
+        self.centre = camera.centre
+        self.sx = d[..., 0] / d[..., 2]
+        self.sy = d[..., 1] / d[..., 2]
+        axis = camera.rotation[2]
+        self.vignette = ((d @ axis) ** 4).astype(np.float32)
+        self.shape = self.sx.shape
+
+    def points_at(self, z, rows=slice(None)):
+        """World x, y of the rays of ``rows`` at heights ``z`` (mm)."""
+        w = z - self.centre[2]
+        return self.centre[0] + w * self.sx[rows], self.centre[1] + w * self.sy[rows]
+
+
+def intersect_surface(bundle: RayBundle, surface, t: float, rows=slice(None), *, tol_mm=1e-8, max_iter=60,
+                      exempt=None):
+    """Intersect the bundle's rays with the surface z = h(x, y, t).
+
+    Parameters
+    ----------
+    exempt : callable(x, y) -> bool array, optional
+        Where non-convergence is acceptable (inside an opaque post, whose
+        pixels never show the water).
+
+    Returns
+    -------
+    x, y, z : ndarrays, world mm, of the first intersection of each ray.
+    """
+    z = np.zeros(bundle.sx[rows].shape)
+    for _ in range(max_iter):
+        x, y = bundle.points_at(z, rows)
+        z_new = surface.height(x, y, t)
+        change = np.abs(z_new - z)
+        z = z_new
+        if float(np.max(change)) < tol_mm:
+            break
+    else:
+        x, y = bundle.points_at(z, rows)
+        bad = change >= tol_mm
+        if exempt is None or not np.all(exempt(x[bad], y[bad])):
+            raise RuntimeError("ray-surface intersection did not converge: surface too steep")
+    x, y = bundle.points_at(z, rows)
+    return x, y, z
+
+
+def _post_hides(bundle: RayBundle, post: Post, z_water, rows):
+    """True where the ray meets the post above the water it would otherwise see."""
+    ax = bundle.centre[0] - post.centre[0]
+    ay = bundle.centre[1] - post.centre[1]
+    bx, by = bundle.sx[rows], bundle.sy[rows]
+    qa = bx * bx + by * by
+    qb = 2.0 * (ax * bx + ay * by)
+    qc = ax * ax + ay * ay - post.radius ** 2
+    disc = qb * qb - 4.0 * qa * qc
+    hit = disc > 0
+    sq = np.sqrt(np.where(hit, disc, 0.0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w_hi = (-qb + sq) / (2.0 * qa)
+        w_lo = (-qb - sq) / (2.0 * qa)
+    z_hi = bundle.centre[2] + w_hi
+    z_lo = bundle.centre[2] + w_lo
+    z_hit = np.minimum(z_hi, post.top)
+    return hit & (z_hit > z_lo) & (z_hit > z_water)
+
+
+def _post_shades(x, y, z, projector_centre, post: Post):
+    """True where the segment from the surface point to the projector crosses the post."""
+    dx = projector_centre[0] - x
+    dy = projector_centre[1] - y
+    dz = projector_centre[2] - z
+    ax = x - post.centre[0]
+    ay = y - post.centre[1]
+    qa = dx * dx + dy * dy
+    qb = 2.0 * (ax * dx + ay * dy)
+    qc = ax * ax + ay * ay - post.radius ** 2
+    disc = qb * qb - 4.0 * qa * qc
+    hit = disc > 0
+    sq = np.sqrt(np.where(hit, disc, 0.0))
+    s_lo = (-qb - sq) / (2.0 * qa)
+    s_hi = (-qb + sq) / (2.0 * qa)
+    s_enter = np.maximum(s_lo, 0.0)
+    return hit & (s_hi > 0) & (s_enter < 1) & (z + s_enter * dz <= post.top)
+
+
+def speckle_pattern(resolution, grain_px: float, rng: np.random.Generator) -> np.ndarray:
+    """A random speckle pattern for the projector, values in [0, 1].
+
+    Gaussian-filtered white noise (correlation FWHM ``grain_px`` projector px)
+    pushed through a soft threshold for high contrast while staying smooth.
+
+    Parameters
+    ----------
+    resolution : (width, height) projector px
+    grain_px : speckle size (autocorrelation FWHM) in projector px.
+    rng : numpy Generator
+
+    Returns
+    -------
+    pattern : float32 array (height, width)
+    """
+    w, h = resolution
+    noise = rng.standard_normal((h, w)).astype(np.float32)
+    # White noise filtered by a Gaussian of sigma s has an autocorrelation of
+    # sigma s*sqrt(2), so FWHM = 2.355 * sqrt(2) * s.
+    sigma = grain_px / (2.3548 * np.sqrt(2.0))
+    g = cv2.GaussianBlur(noise, (0, 0), sigma, borderType=cv2.BORDER_REFLECT)
+    g /= g.std()
+    return (0.5 * (1.0 + np.tanh(1.2 * g))).astype(np.float32)
+
+
+def _sample_pattern(coeffs, up, vp):
+    # coeffs holds the cubic B-spline coefficients of the pattern (prefiltered once per frame).
+    return ndimage.map_coordinates(coeffs, [vp.ravel(), up.ravel()], order=3, mode="constant",
+                                   cval=0.0, prefilter=False).reshape(up.shape)
+
+
+def render_radiance_speckle(bundle: RayBundle, surface, t: float, projector: Projector, pattern,
+                            lighting: Lighting, post: Post | None = None, tile_rows: int = 192):
+    """Supersampled radiance image of the speckle-lit water (fraction of full scale).
+
+    Returns
+    -------
+    radiance : float32 array (height*S, width*S)
+    """
+    coeffs = ndimage.spline_filter(pattern.astype(np.float64), order=3, mode="mirror")
+    pc = projector.centre
+    axis_p = projector.rotation[2]
+    z0 = pc[2]  # projector height above still water: normalises irradiance to 1 on the plane
+    out = np.empty(bundle.shape, np.float32)
+    for r0 in range(0, bundle.shape[0], tile_rows):
+        rows = slice(r0, min(r0 + tile_rows, bundle.shape[0]))
+        x, y, z = intersect_surface(bundle, surface, t, rows, exempt=None if post is None else post.contains)
+        hx, hy = surface.gradient(x, y, t)
+        lx, ly, lz = pc[0] - x, pc[1] - y, pc[2] - z
+        r = np.sqrt(lx * lx + ly * ly + lz * lz)
+        cos_i = (-hx * lx - hy * ly + lz) / (r * np.sqrt(1.0 + hx * hx + hy * hy))
+        cos_p = -(axis_p[0] * lx + axis_p[1] * ly + axis_p[2] * lz) / r
+        up, vp = projector.project_xyz(x, y, z)
+        value = _sample_pattern(coeffs, up, vp)
+        irr = value * np.clip(cos_i, 0.0, None) * (z0 / r) ** 2 / cos_p ** 3
+        if post is not None:
+            irr = np.where(_post_shades(x, y, z, pc, post), 0.0, irr)
+        rad = lighting.exposure * irr + lighting.ambient
+        if post is not None:
+            rad = np.where(_post_hides(bundle, post, z, rows), lighting.post_radiance, rad)
+        out[rows] = rad * bundle.vignette[rows]
+    return out
+
+
+def render_radiance_board(bundle: RayBundle, board_rotation, board_origin, board, lighting: Lighting,
+                          tile_rows: int = 256):
+    """Supersampled radiance of a chessboard target held over unlit water.
+
+    Parameters
+    ----------
+    board_rotation : (3, 3) board -> world rotation (board x, y in its plane).
+    board_origin : (3,) world mm of the board's first inner corner.
+    board : dict with cols, rows (inner corners), square_mm, margin_mm.
+    """
+    Rb = np.asarray(board_rotation, float)
+    ob = np.asarray(board_origin, float)
+    n = Rb[:, 2]
+    sq = board["square_mm"]
+    cols, rows_ = board["cols"], board["rows"]
+    margin = board["margin_mm"]
+    c = bundle.centre
+    out = np.empty(bundle.shape, np.float32)
+    for r0 in range(0, bundle.shape[0], tile_rows):
+        rows = slice(r0, min(r0 + tile_rows, bundle.shape[0]))
+        dx, dy = bundle.sx[rows], bundle.sy[rows]
+        # Ray points c + w * (sx, sy, 1); plane n . (p - ob) = 0.
+        denom = n[0] * dx + n[1] * dy + n[2]
+        w = (n @ (ob - c)) / denom
+        px = c[0] + w * dx - ob[0]
+        py = c[1] + w * dy - ob[1]
+        pz = c[2] + w - ob[2]
+        bx = Rb[0, 0] * px + Rb[1, 0] * py + Rb[2, 0] * pz
+        by = Rb[0, 1] * px + Rb[1, 1] * py + Rb[2, 1] * pz
+        on_board = (bx > -sq - margin) & (bx < cols * sq + margin) & (by > -sq - margin) & (by < rows_ * sq + margin)
+        in_squares = (bx > -sq) & (bx < cols * sq) & (by > -sq) & (by < rows_ * sq)
+        black = ((np.floor(bx / sq) + np.floor(by / sq)) % 2 == 0) & in_squares
+        rad = np.where(on_board & (c[2] + w > 0), np.where(black, lighting.board_black, lighting.board_white),
+                       lighting.board_background)
+        out[rows] = rad * bundle.vignette[rows]
+    return out
+
+
+def expose(radiance, sensor: SensorModel, rng: np.random.Generator) -> np.ndarray:
+    """Blur, integrate over pixels, add sensor noise and quantise.
+
+    Parameters
+    ----------
+    radiance : float32 (H*S, W*S), fraction of full scale.
+
+    Returns
+    -------
+    image : uint8 or uint16 (H, W); 10- and 12-bit data are stored in 16 bits
+        without shifting (values up to 2**bits - 1).
+    """
+    s = sensor.supersample
+    if sensor.psf_sigma_px > 0:
+        radiance = cv2.GaussianBlur(radiance, (0, 0), sensor.psf_sigma_px * s, borderType=cv2.BORDER_REFLECT)
+    h, w = radiance.shape[0] // s, radiance.shape[1] // s
+    pixel = radiance.reshape(h, s, w, s).mean(axis=(1, 3), dtype=np.float64)
+    electrons = np.clip(pixel, 0.0, None) * sensor.full_well_e
+    noisy = electrons + np.sqrt(electrons + sensor.read_noise_e ** 2) * rng.standard_normal(electrons.shape)
+    full = 2 ** sensor.bits - 1
+    dn = np.rint((noisy / sensor.full_well_e + sensor.black_level) * full)
+    dn = np.clip(dn, 0, full)
+    return dn.astype(np.uint8 if sensor.container_bits == 8 else np.uint16)
