@@ -159,3 +159,21 @@ def test_speckle_grain_size_matches_request():
     fwhm = 2 * np.interp(0.5, profile[::-1], np.arange(20)[::-1])
     assert 4.5 < fwhm < 6.5
     assert pat.min() >= 0.0 and pat.max() <= 1.0
+
+
+def test_time_harmonic_tables_match_direct_intersection():
+    # The along-ray tables of a time-harmonic field must give the heights that direct
+    # fixed-point intersection with the MacCamy-Fuchs surface gives (outside the post).
+    sc = build_scenario("scatter", quick=True, seed=0)
+    rig = sc.rigs["rig"]
+    bundle = rd.RayBundle(rig.left, 1)
+    surface = sc.group("waves").surface
+    table = rd._HarmonicAlongRays(bundle, surface)
+    rows = slice(150, 230)
+    for t in (0.0, 0.037):
+        x, y, z, hx, hy = table.intersect(bundle, t, rows, exempt=sc.post.contains)
+        x2, y2, z2 = rd.intersect_surface(bundle, surface, t, rows, exempt=sc.post.contains)
+        water = ~sc.post.contains(x2, y2)
+        assert np.abs(z - z2)[water].max() < 2e-6
+        gx, gy = surface.gradient(x2, y2, t)
+        assert np.abs(hx - gx)[water].max() < 2e-3 and np.abs(hy - gy)[water].max() < 2e-3

@@ -94,6 +94,12 @@ class SurfrecGroup(click.Group):
             where = f" ({exc.filename})" if getattr(exc, "filename", None) else ""
             click.echo(f"surfrec: failed: {exc.strerror or exc}{where}", err=True)
             sys.exit(1)
+        except Exception as exc:  # an unexpected failure: one line, the traceback with --verbose
+            if verbose:
+                raise
+            click.echo(f"surfrec: failed: {type(exc).__name__}: {exc} (run again with --verbose for details)",
+                       err=True)
+            sys.exit(1)
         if isinstance(rv, int) and rv:
             sys.exit(rv)
         sys.exit(0)

@@ -56,3 +56,18 @@ def output_option(kind: str = "file", required: bool = True):
     return click.option("-o", "--output", "output", required=required, metavar="PATH",
                         type=click.Path(dir_okay=(kind == "folder"), file_okay=(kind == "file")),
                         help=what + " Never overwritten without --force.")
+
+
+def available_cores() -> int:
+    """Cores this process may use: its CPU affinity (which batch schedulers set), else the CPU count."""
+    import os
+
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # macOS, Windows
+        return max(1, os.cpu_count() or 1)
+
+
+workers_option = click.option(
+    "--workers", type=click.IntRange(min=1), default=None, metavar="N",
+    help="Worker processes (default: the cores this process may use, from its CPU affinity).")

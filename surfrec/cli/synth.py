@@ -7,7 +7,7 @@ import time
 
 import click
 
-from surfrec.cli.options import force_option, seed_option, verbosity
+from surfrec.cli.options import available_cores, force_option, seed_option, verbosity, workers_option
 
 log = logging.getLogger("surfrec")
 
@@ -25,15 +25,18 @@ SCENARIO_HELP = {
               help="Which invented session to render: " + "; ".join(f"{k}: {v}" for k, v in SCENARIO_HELP.items()))
 @click.option("--quick", is_flag=True, help="A small session (512x384 px, a few frames) that renders in seconds.")
 @seed_option
+@workers_option
 @force_option
 @verbosity
-def command(outdir, scenario, quick, seed, force):
+def command(outdir, scenario, quick, seed, workers, force):
     """Render a synthetic stereo session into OUTDIR.
 
     OUTDIR receives target/, still/ and waves/ folders of left/right PNG
     images, waves/timestamps.csv, truth.h5 (every camera, projector and
     surface parameter and the exact surface) and SCENARIO.md. The folder
-    is built under a temporary name and appears only when complete.
+    is built under a temporary name and appears only when complete. With two
+    or more workers the two cameras render in parallel; the images do not
+    depend on the worker count.
     """
     from surfrec.io.outputs import check_output
 
@@ -49,7 +52,8 @@ def command(outdir, scenario, quick, seed, force):
     log.info("rendering scenario %r%s: %d frame pairs of %dx%d px", scenario, " (quick)" if quick else "",
              total, *sc.rigs["rig"].left.image_size)
     with Progress(total, "rendering") as progress:
-        summary = write_session(sc, out, force=force, progress=progress)
+        summary = write_session(sc, out, force=force, progress=progress,
+                                workers=workers or available_cores())
     dt = time.monotonic() - t0
     log.info("wrote %s in %.1f s (%.2f s per frame pair)", out, dt, summary["render_seconds"] / max(total, 1))
     click.echo(str(out))

@@ -20,7 +20,7 @@ from surfrec.io.truthfile import write_truth
 FRAME_NAME = "frame_{:05d}.png"
 
 
-def write_session(scenario, outdir, *, force: bool = False, progress=None) -> dict:
+def write_session(scenario, outdir, *, force: bool = False, progress=None, workers: int = 1) -> dict:
     """Render ``scenario`` and write the whole session folder.
 
     Returns
@@ -40,7 +40,7 @@ def write_session(scenario, outdir, *, force: bool = False, progress=None) -> di
             save_image(tmp / group / "right" / FRAME_NAME.format(i), right)
 
         t0 = time.monotonic()
-        records = render_session(scenario, sink, progress=progress)
+        records = render_session(scenario, sink, progress=progress, workers=workers)
         render_seconds = time.monotonic() - t0
         surfaces = truth_surface_grids(scenario)
         for g in scenario.groups:

@@ -277,3 +277,15 @@ class Projector:
             "resolution": list(self.resolution),
             **self.extra,
         }
+
+
+def stereo_from_cameras(left: Camera, right: Camera):
+    """Stereo pose of two cameras: X_right = R X_left + t (rig-frame convention of design.md).
+
+    Returns
+    -------
+    R : (3, 3), t : (3,) mm
+    """
+    r = right.rotation @ left.rotation.T
+    t = right.translation - r @ left.translation
+    return r, t

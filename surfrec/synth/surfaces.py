@@ -459,8 +459,12 @@ class ScatteredWave(_Fluid, _Surface):
     evaluates every point closer to the axis than the farthest cell centre
     that missed ``tolerance_mm / 2`` (plus two grid steps) from the series
     directly instead (``exact_radius_mm``; 0 when the spline meets the
-    tolerance everywhere). Points outside ``extent_mm`` also use the series.
-    The direct evaluation costs about 1 microsecond per point.
+    tolerance everywhere). Over the next four grid steps outward the two are
+    blended with a quintic smoothstep, so the height stays continuous (C2)
+    and a ray-surface fixed-point iteration cannot hang on a jump. Points
+    outside ``extent_mm`` use the series (there the switch is a jump of at
+    most the spline error at the extent edge). The direct evaluation costs
+    about 1 microsecond per point.
 
     ``height`` is finite inside the post (the table's continuation), so that
     ray intersection does not break there; it is not physical water. Use
@@ -508,7 +512,9 @@ class ScatteredWave(_Fluid, _Surface):
     """
 
     kind = "scattered_wave"
+    time_harmonic = True  # eta = Re[C(x, y) exp(-i omega t)]: renderers may tabulate C once
     _MARGIN_STEPS = 16  # prefilter boundary effects decay like 0.268^n: 7e-10 at 16 steps
+    _BLEND_STEPS = 4  # series-to-spline blend annulus; the spline already meets the tolerance there
 
     def __init__(self, amplitude_mm, frequency_hz, depth_mm, post_centre_mm, post_radius_mm, extent_mm,
                  grid_step_mm=0.25, direction_deg=0.0, phase_deg=0.0,
@@ -621,6 +627,7 @@ class ScatteredWave(_Fluid, _Surface):
         keep |= sub & (r >= a)
         px, py, pr = xx[keep], yy[keep], r[keep]
         self.exact_radius_mm = 0.0
+        self._blend_outer_mm = 0.0
         self.spline_error_mm = 0.0
         if px.size == 0:
             return
@@ -630,41 +637,55 @@ class ScatteredWave(_Fluid, _Surface):
         bad = err > 0.5 * tol
         if np.any(bad):
             self.exact_radius_mm = float(pr[bad].max()) + 2.0 * h
+            self._blend_outer_mm = self.exact_radius_mm + self._BLEND_STEPS * h
         outside = pr >= self.exact_radius_mm
         self.spline_error_mm = float(err[outside].max()) if np.any(outside) else 0.0
 
     # -- evaluation --------------------------------------------------------
 
-    def _exact_mask(self, x, y):
+    # evaluation paths per point
+    _SPLINE, _EXACT, _BLEND = 0, 1, 2
+
+    def _paths(self, x, y):
+        """Path per point: series outside the extent and inside the exact
+        radius, spline elsewhere, and both blended over an annulus of
+        ``_BLEND_STEPS`` grid steps just outside the exact radius."""
         xmin, xmax, ymin, ymax = self.extent_mm
-        mask = ~((x >= xmin) & (x <= xmax) & (y >= ymin) & (y <= ymax))
+        inside = (x >= xmin) & (x <= xmax) & (y >= ymin) & (y <= ymax)
+        mode = np.where(inside, self._SPLINE, self._EXACT).astype(np.int8)
         if self.exact_radius_mm > 0.0:
             u = x - self.post_centre_mm[0]
             v = y - self.post_centre_mm[1]
-            mask |= u * u + v * v < self.exact_radius_mm**2
-        return mask
+            r2 = u * u + v * v
+            mode[r2 < self.exact_radius_mm**2] = self._EXACT
+            mode[inside & (r2 >= self.exact_radius_mm**2) & (r2 < self._blend_outer_mm**2)] = self._BLEND
+        return mode
 
-    def _eta(self, x, y, t, exact):
-        """Height at 1-D points x, y (mm), with the series where ``exact``."""
+    def _spline_weight(self, x, y):
+        """Share of the spline in the blend annulus: quintic smoothstep
+        q^3 (10 - 15 q + 6 q^2), so height stays C2 across the switch."""
+        r = np.hypot(x - self.post_centre_mm[0], y - self.post_centre_mm[1])
+        q = np.clip((r - self.exact_radius_mm) / (self._blend_outer_mm - self.exact_radius_mm), 0.0, 1.0)
+        return q * q * q * (10.0 + q * (-15.0 + 6.0 * q))
+
+    def _eta_exact(self, x, y, t):
+        """Height at 1-D points from the series (with the inside-post fill)."""
         k = self.wavenumber
-        cx, cy = self.post_centre_mm
+        u = x - self.post_centre_mm[0]
+        v = y - self.post_centre_mm[1]
         p = self.amplitude_mm * np.exp(1j * (self._phase - self.omega * t))  # A e^{i(phase - wt)}
-        out = np.empty(x.size)
-        if np.any(exact):
-            xe, ye = x[exact], y[exact]
-            u, v = xe - cx, ye - cy
-            full = np.exp(1j * k * (u * self._d[0] + v * self._d[1]))
-            full += self._envelope_exact(xe, ye) * np.exp(1j * k * np.hypot(u, v))
-            out[exact] = (p * full).real
-        spl = ~exact
-        n_spl = int(np.count_nonzero(spl))
-        if n_spl == 0:
-            return out
-        partial = n_spl < x.size
-        xs, ys = (x[spl], y[spl]) if partial else (x, y)
-        er, ei = self._envelope_spline(xs, ys)
-        u = xs - cx
-        v = ys - cy
+        full = np.exp(1j * k * (u * self._d[0] + v * self._d[1]))
+        full += self._envelope_exact(x, y) * np.exp(1j * k * np.hypot(u, v))
+        return (p * full).real
+
+    def _eta_spline(self, x, y, t):
+        """Height at 1-D points from the table: incident in closed form plus
+        the interpolated scattered envelope."""
+        k = self.wavenumber
+        p = self.amplitude_mm * np.exp(1j * (self._phase - self.omega * t))
+        er, ei = self._envelope_spline(x, y)
+        u = x - self.post_centre_mm[0]
+        v = y - self.post_centre_mm[1]
         # incident: A cos(k d.(x - c) + phase - wt)
         inc = u * (k * self._d[0])
         inc += v * (k * self._d[1])
@@ -681,10 +702,26 @@ class ScatteredWave(_Fluid, _Surface):
         er -= ei
         er *= abs(p)
         inc += er
-        if partial:
-            out[spl] = inc
-            return out
         return inc
+
+    def _eta(self, x, y, t, mode):
+        """Height at 1-D points x, y (mm) along the given paths."""
+        if not np.any(mode):
+            return self._eta_spline(x, y, t)
+        out = np.empty(x.size)
+        ne = mode != self._SPLINE
+        ns = mode != self._EXACT
+        if np.any(ne):
+            out[ne] = self._eta_exact(x[ne], y[ne], t)
+        if np.any(ns):
+            sv = self._eta_spline(x[ns], y[ns], t)
+            bl = mode[ns] == self._BLEND
+            if np.any(bl):
+                idx = np.nonzero(ns)[0][bl]
+                w = self._spline_weight(x[idx], y[idx])
+                sv[bl] = (1.0 - w) * out[idx] + w * sv[bl]
+            out[ns] = sv
+        return out
 
     def height(self, x, y, t):
         """Surface height, mm, at x, y (mm) and time t (s): spline table, series
@@ -692,7 +729,7 @@ class ScatteredWave(_Fluid, _Surface):
         t = _time(t)
         xa, ya, shape = _xy(x, y)
         xf, yf = _flat(xa, shape), _flat(ya, shape)
-        return self._eta(xf, yf, t, self._exact_mask(xf, yf)).reshape(shape)
+        return self._eta(xf, yf, t, self._paths(xf, yf)).reshape(shape)
 
     def gradient(self, x, y, t, *, step_mm=1e-3):
         """Slopes (dh/dx, dh/dy), dimensionless, by central differences of ``height``.
@@ -727,7 +764,7 @@ class ScatteredWave(_Fluid, _Surface):
         t = _time(t)
         xa, ya, shape = _xy(x, y)
         xf, yf = _flat(xa, shape), _flat(ya, shape)
-        ex = self._exact_mask(xf, yf)
+        ex = self._paths(xf, yf)
         hs = float(step_mm)
         gx = self._eta(xf + hs, yf, t, ex)
         gx -= self._eta(xf - hs, yf, t, ex)
