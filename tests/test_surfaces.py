@@ -343,3 +343,16 @@ def test_scattered_exposes_post_and_reflection_coefficients(scattered):
     ref = -special.h2vp(m, ka) / special.h1vp(m, ka)  # scipy reference
     np.testing.assert_allclose(rc, ref, rtol=1e-12)
     assert s.post_radius_mm > 0 and len(s.post_centre_mm) == 2
+
+
+def test_scalar_inputs_give_scalars():
+    # Closed form of a plane wave at one point: A cos(k x - omega t + phase) (linear wave theory).
+    from surfrec.synth.surfaces import Depression, PlaneWave, Superposition
+
+    w = PlaneWave(amplitude_mm=1.0, frequency_hz=5.0, depth_mm=60.0, phase_deg=30.0)
+    s = Superposition(w, Depression(centre_mm=(0.0, 0.0), depth_mm=2.0, radius_mm=10.0))
+    h = s.height(0.0, 0.0, 0.0)
+    assert isinstance(h, float)
+    assert abs(h - (np.cos(np.radians(30.0)) - 2.0)) < 1e-12
+    gx, gy = s.gradient(1.0, 2.0, 0.1)
+    assert isinstance(gx, float) and isinstance(gy, float)

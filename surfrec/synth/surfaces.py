@@ -107,8 +107,31 @@ class _Fluid:
         return {"gravity": self.gravity, "surface_tension": self.surface_tension, "density": self.density}
 
 
+def _scalar_safe(method):
+    """Let height/gradient take 0-d inputs (the in-place numpy work needs arrays)."""
+    import functools
+
+    @functools.wraps(method)
+    def wrapper(self, x, y, t, *args, **kwargs):
+        if np.ndim(x) == 0 and np.ndim(y) == 0:
+            out = method(self, np.atleast_1d(np.asarray(x, float)), np.atleast_1d(np.asarray(y, float)), t,
+                         *args, **kwargs)
+            if isinstance(out, tuple):
+                return tuple(float(o[0]) for o in out)
+            return float(out[0])
+        return method(self, x, y, t, *args, **kwargs)
+
+    return wrapper
+
+
 class _Surface:
     kind = "surface"
+
+    def __init_subclass__(cls, **kwargs):
+        super().__init_subclass__(**kwargs)
+        for name in ("height", "gradient", "height_exact"):
+            if name in cls.__dict__:
+                setattr(cls, name, _scalar_safe(cls.__dict__[name]))
 
     def to_dict(self) -> dict:  # pragma: no cover - every subclass overrides
         raise NotImplementedError
