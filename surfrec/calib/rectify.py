@@ -7,7 +7,7 @@ import numpy as np
 
 
 def rectify(matrix_left, dist_left, matrix_right, dist_right, image_size, rotation, translation, *,
-            alpha: float = 0.0) -> dict:
+            alpha: float = 0.0, zero_disparity: bool = False) -> dict:
     """Rectifying rotations and projections of a calibrated stereo pair.
 
     Parameters
@@ -19,19 +19,28 @@ def rectify(matrix_left, dist_left, matrix_right, dist_right, image_size, rotati
         X_right = R X_left + t (t in mm).
     alpha : free scaling of cv2.stereoRectify: 0 keeps only valid pixels,
         1 keeps every source pixel.
+    zero_disparity : make the two rectified principal points equal
+        (``CALIB_ZERO_DISPARITY``). For a verged rig this forces both
+        rectified images to be framed about one common principal ray, and
+        with ``alpha=0`` OpenCV then zooms in until only the narrow field
+        both cameras share about that ray is left (about 4.5 times for the
+        synthetic rig's 16 degrees of convergence). With False each image
+        keeps its own horizontal principal point (P1[0, 2] != P2[0, 2]); Q
+        carries the offset, so disparity is still d = u_left - u_right.
+        False is the default: both views stay centred on the field and the
+        water surface's disparities are a few px.
 
     Returns
     -------
     dict with R1, R2 (3, 3), P1, P2 (3, 4), Q (4, 4) as numpy arrays, in
-    OpenCV's convention (principal points made equal, so disparity
-    d = u_left - u_right and Q maps (u, v, d, 1) to homogeneous left-
-    rectified coordinates in mm).
+    OpenCV's convention (disparity d = u_left - u_right; Q maps
+    (u, v, d, 1) to homogeneous left-rectified coordinates in mm).
     """
     r1, r2, p1, p2, q, _, _ = cv2.stereoRectify(
         np.asarray(matrix_left, float), np.asarray(dist_left, float),
         np.asarray(matrix_right, float), np.asarray(dist_right, float),
         (int(image_size[0]), int(image_size[1])), np.asarray(rotation, float),
-        np.asarray(translation, float).reshape(3, 1), flags=cv2.CALIB_ZERO_DISPARITY, alpha=alpha)
+        np.asarray(translation, float).reshape(3, 1), flags=cv2.CALIB_ZERO_DISPARITY if zero_disparity else 0, alpha=alpha)
     return {"R1": r1, "R2": r2, "P1": p1, "P2": p2, "Q": q}
 
 

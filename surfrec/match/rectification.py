@@ -1,0 +1,151 @@
+"""Rectifying frames with maps computed once per rig.
+
+Two families of resampling:
+
+- OpenCV's ``cv2.remap`` (bilinear, bicubic, Lanczos-4): fast and well kept,
+  but it rounds every sample position to 1/32 px (INTER_BITS = 5), and since
+  the map's fractional part drifts slowly along a row, the rounding error
+  is correlated over many pixels — a systematic shift of up to 1/64 px.
+- Exact-position B-splines of order 3 or 5 (the image prefiltered once with
+  scipy.ndimage.spline_filter, then sampled in a compiled loop): no
+  position rounding, and interpolation error far below the matcher's
+  noise. Written by hand because scipy's map_coordinates is single-threaded
+  and several times slower on whole frames.
+
+The benchmark (tests/benchmarks/bench_match.py) measures the disparity error
+each method adds; the default is the one chosen there.
+"""
+
+from __future__ import annotations
+
+import cv2
+import numpy as np
+from numba import njit, prange
+from scipy import ndimage
+
+from surfrec.calib.rectify import rectification_maps
+
+METHODS = ("linear", "cubic", "lanczos4", "bspline3", "bspline5")
+DEFAULT_METHOD = "bspline3"
+
+_CV_FLAGS = {"linear": cv2.INTER_LINEAR, "cubic": cv2.INTER_CUBIC, "lanczos4": cv2.INTER_LANCZOS4}
+
+
+class FrameRectifier:
+    """Rectify left and right frames of one rig with maps computed once.
+
+    Parameters
+    ----------
+    rig : surfrec.io.rigfile.StereoRig
+    method : one of METHODS.
+
+    Attributes
+    ----------
+    maps : {"left": (map_x, map_y), "right": (...)} float32 (H, W): for each
+        rectified pixel, its position in the original image, px.
+    """
+
+    def __init__(self, rig, method: str = DEFAULT_METHOD):
+        if method not in METHODS:
+            raise ValueError(f"unknown rectification method {method!r}; choose one of {', '.join(METHODS)}")
+        self.method = method
+        rect = rig.rectification
+        self.image_size = tuple(rig.image_size)
+        self.maps = {
+            "left": rectification_maps(rig.left_matrix, rig.left_distortion, rect["R1"], rect["P1"], rig.image_size),
+            "right": rectification_maps(rig.right_matrix, rig.right_distortion, rect["R2"], rect["P2"],
+                                        rig.image_size),
+        }
+
+    def __call__(self, image, side: str) -> np.ndarray:
+        """Rectified float32 image (H, W) of ``image`` (original camera image of ``side``)."""
+        mx, my = self.maps[side]
+        img = np.asarray(image, dtype=np.float32)
+        if self.method in _CV_FLAGS:
+            return cv2.remap(img, mx, my, _CV_FLAGS[self.method], borderMode=cv2.BORDER_REFLECT)
+        order = 3 if self.method == "bspline3" else 5
+        coef = ndimage.spline_filter(img.astype(np.float64), order=order, mode="mirror")
+        out = np.empty(mx.shape, np.float32)
+        _remap_bspline(coef, mx, my, order, out)
+        return out
+
+    def left(self, image):
+        return self(image, "left")
+
+    def right(self, image):
+        return self(image, "right")
+
+    def mask(self, mask_original) -> np.ndarray:
+        """A left-image mask (non-zero = measure) carried into the rectified left view (nearest)."""
+        mx, my = self.maps["left"]
+        m = (np.asarray(mask_original) != 0).astype(np.uint8)
+        return cv2.remap(m, mx, my, cv2.INTER_NEAREST, borderMode=cv2.BORDER_CONSTANT, borderValue=0) != 0
+
+
+@njit(cache=True, inline="always")
+def _w3(f, w):
+    g = 1.0 - f
+    w[0] = g * g * g / 6.0
+    w[1] = (3.0 * f * f * f - 6.0 * f * f + 4.0) / 6.0
+    w[2] = (-3.0 * f * f * f + 3.0 * f * f + 3.0 * f + 1.0) / 6.0
+    w[3] = f * f * f / 6.0
+
+
+@njit(cache=True, inline="always")
+def _w5(f, w):
+    g = 1.0 - f
+    w[0] = g * g * g * g * g / 120.0
+    w[5] = f * f * f * f * f / 120.0
+    x = f + 1.0
+    x2 = x * x
+    w[1] = (51.0 + 75.0 * x - 210.0 * x2 + 150.0 * x2 * x - 45.0 * x2 * x2 + 5.0 * x2 * x2 * x) / 120.0
+    x = 2.0 - f
+    x2 = x * x
+    w[4] = (51.0 + 75.0 * x - 210.0 * x2 + 150.0 * x2 * x - 45.0 * x2 * x2 + 5.0 * x2 * x2 * x) / 120.0
+    x2 = f * f
+    w[2] = (66.0 - 60.0 * x2 + 30.0 * x2 * x2 - 10.0 * x2 * x2 * f) / 120.0
+    x2 = g * g
+    w[3] = (66.0 - 60.0 * x2 + 30.0 * x2 * x2 - 10.0 * x2 * x2 * g) / 120.0
+
+
+@njit(parallel=True, cache=True)
+def _remap_bspline(coef, mx, my, order, out):
+    """Sample B-spline coefficients at float positions (mirror boundary)."""
+    H, W = coef.shape
+    rows, cols = mx.shape
+    half = 1 if order == 3 else 2
+    taps = order + 1
+    for r in prange(rows):
+        wx = np.empty(6)
+        wy = np.empty(6)
+        for c in range(cols):
+            x = mx[r, c]
+            y = my[r, c]
+            ix = int(np.floor(x))
+            iy = int(np.floor(y))
+            if order == 3:
+                _w3(x - ix, wx)
+                _w3(y - iy, wy)
+            else:
+                _w5(x - ix, wx)
+                _w5(y - iy, wy)
+            acc = 0.0
+            for j in range(taps):
+                yy = iy - half + j
+                # mirror boundary, as the prefilter assumes
+                if yy < 0:
+                    yy = -yy
+                elif yy >= H:
+                    yy = 2 * H - 2 - yy
+                yy = min(max(yy, 0), H - 1)
+                racc = 0.0
+                for i in range(taps):
+                    xx = ix - half + i
+                    if xx < 0:
+                        xx = -xx
+                    elif xx >= W:
+                        xx = 2 * W - 2 - xx
+                    xx = min(max(xx, 0), W - 1)
+                    racc += wx[i] * coef[yy, xx]
+                acc += wy[j] * racc
+            out[r, c] = acc
