@@ -1,0 +1,194 @@
+"""Matching a run: grid, band, time windows, validity — one frame at a time.
+
+A frame's result depends only on the frames inside its own time window, the
+rig and the datum (design.md), so any chunking of a run reproduces the
+sequential result exactly.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import OrderedDict
+from dataclasses import asdict, dataclass
+
+import numpy as np
+from scipy import ndimage
+
+from surfrec.match.correlate import integer_search, refine, row_spline_coefficients
+from surfrec.match.validity import normalised_median_test, window_fully_inside
+
+# frame_flags bits (disparity.h5, heights.h5)
+FLAG_DROPPED = 1
+FLAG_UNREADABLE = 2
+FLAG_BLANK = 4
+FLAG_FEW_VALID = 8
+FLAG_MEANINGS = "dropped unreadable blank few_valid_points"
+FLAG_VALUES = (FLAG_DROPPED, FLAG_UNREADABLE, FLAG_BLANK, FLAG_FEW_VALID)
+
+
+@dataclass
+class MatchParams:
+    """Matcher settings (all recorded in disparity.h5).
+
+    window : odd square window side, px.  spacing : grid step, px.
+    time_window : odd number of frames correlated together (1 = per frame).
+    max_excursion_mm : largest expected surface excursion from the datum, mm.
+    band_px : half-width of the integer search band, px (derived from
+        max_excursion_mm and the rig geometry when None).
+    spline_order : B-spline order of the sub-pixel interpolation (3 or 5).
+    rectify_method : see surfrec.match.rectification.METHODS.
+    min_score : ZNCC below which a point is invalid.
+    median_threshold, median_eps : normalised median test (px for eps).
+    max_sigma_px : points with a larger estimated 1-sigma are invalid.
+    """
+
+    window: int = 15
+    spacing: int = 4
+    time_window: int = 1
+    max_excursion_mm: float = 5.0
+    band_px: int | None = None
+    spline_order: int = 5
+    rectify_method: str = "bspline3"
+    min_score: float = 0.6
+    median_threshold: float = 2.0
+    median_eps: float = 0.1
+    max_sigma_px: float = 0.2
+
+    def to_dict(self):
+        return asdict(self)
+
+
+def matching_grid(image_size, spacing: int, window: int):
+    """Regular grid of window centres inside the rectified left image.
+
+    Returns
+    -------
+    u (Nu,), v (Nv,) int px; the margin leaves room for the window and the
+    interpolation taps.
+    """
+    w, h = image_size
+    margin = window // 2 + 4
+    u = np.arange(margin, w - margin, spacing, dtype=np.int64)
+    v = np.arange(margin, h - margin, spacing, dtype=np.int64)
+    return u, v
+
+
+def reference_on_grid(ref_u, ref_v, ref_disparity, u, v):
+    """The datum's reference disparity interpolated onto another grid (bilinear; NaN outside)."""
+    ref = np.asarray(ref_disparity, dtype=np.float64)
+    valid = np.isfinite(ref)
+    filled = ref.copy()
+    if not valid.all():
+        # Fill holes (the post, masked areas) by the nearest valid value so that the
+        # bilinear interpolation near a hole does not spread NaN over good points.
+        idx = ndimage.distance_transform_edt(~valid, return_distances=False, return_indices=True)
+        filled = ref[tuple(idx)]
+    fu = np.interp(u, ref_u, np.arange(len(ref_u)), left=np.nan, right=np.nan)
+    fv = np.interp(v, ref_v, np.arange(len(ref_v)), left=np.nan, right=np.nan)
+    vv, uu = np.meshgrid(fv, fu, indexing="ij")
+    out = ndimage.map_coordinates(filled, [np.nan_to_num(vv, nan=-1), np.nan_to_num(uu, nan=-1)], order=1,
+                                  mode="constant", cval=np.nan)
+    out[~np.isfinite(vv) | ~np.isfinite(uu)] = np.nan
+    return out
+
+
+def band_halfwidth_px(reference, plane_offset_mm: float, disparity_offset_px: float, max_excursion_mm: float):
+    """Integer search half-width covering +-max_excursion_mm about the datum, px.
+
+    Along a left-camera ray the disparity minus the principal-point offset
+    (cx1 - cx2) is inversely proportional to the depth, and the depth to a
+    plane moved by Delta along its normal scales by (D + Delta) / D, D being
+    the camera's distance to the plane. So |delta d| <= (d - c) Delta / (D - Delta).
+
+    Parameters
+    ----------
+    reference : datum disparity on the grid, px.  plane_offset_mm : D, mm.
+    disparity_offset_px : c = cx1 - cx2 of the rectified views, px.
+    """
+    core = np.abs(np.asarray(reference) - disparity_offset_px)
+    core = core[np.isfinite(core)]
+    if core.size == 0:
+        raise ValueError("the datum holds no valid reference disparity")
+    worst = float(core.max()) * max_excursion_mm / max(plane_offset_mm - max_excursion_mm, 1e-6)
+    return int(math.ceil(worst)) + 2  # two px of margin for the parabolic start and the window's slope
+
+
+def time_window_indices(i: int, n: int, time_window: int):
+    """Frames of frame i's time window (consecutive frames, clipped to the run)."""
+    half = time_window // 2
+    return list(range(max(0, i - half), min(n, i + half + 1)))
+
+
+class RectifiedCache:
+    """Keeps the rectified frames of the current time windows (bounded memory)."""
+
+    def __init__(self, rectifier, left_frames, right_frames, keep: int):
+        self.rectifier = rectifier
+        self.left_frames = left_frames
+        self.right_frames = right_frames
+        self.keep = max(1, keep)
+        self.store = OrderedDict()
+
+    def get(self, i):
+        if i not in self.store:
+            left = self.rectifier.left(self.left_frames[i])
+            right = self.rectifier.right(self.right_frames[i])
+            self.store[i] = (left, right)
+            while len(self.store) > self.keep:
+                self.store.popitem(last=False)
+        return self.store[i]
+
+
+def match_frame(lefts, rights, taus, grid_u, grid_v, centre, band, params: MatchParams, *, measure=None):
+    """Match one frame (or one spatio-temporal stack) on the grid.
+
+    Parameters
+    ----------
+    lefts, rights : (T, H, W) float32 rectified frames of the time window.
+    taus : (T,) frame times relative to the frame matched, in frames.
+    grid_u, grid_v : (Nu,), (Nv,) int px.  centre : (Nv, Nu) band centres, px
+        (the datum's reference disparity), NaN where not measured.
+    band : half-width of the integer search, px.
+    measure : (Nv, Nu) bool or None, points allowed by the mask.
+
+    Returns
+    -------
+    dict of (Nv, Nu) float32 arrays: disparity (NaN invalid), disparity_sigma,
+    score; and counts of why points were rejected.
+    """
+    vv, uu = np.meshgrid(grid_v, grid_u, indexing="ij")
+    ok = np.isfinite(centre)
+    if measure is not None:
+        ok &= measure
+    us, vs = uu[ok], vv[ok]
+    c = np.rint(centre[ok]).astype(np.int64)
+    lefts = np.ascontiguousarray(lefts, dtype=np.float32)
+    rights = np.ascontiguousarray(rights, dtype=np.float32)
+    d_int, s_int, _ = integer_search(lefts, rights, us, vs, c, band, params.window)
+    coef = row_spline_coefficients(rights, params.spline_order)
+    temporal = lefts.shape[0] > 1
+    d, p, sigma, score, iters = refine(lefts, coef, us, vs, d_int, params.window, order=params.spline_order,
+                                       taus=taus, temporal=temporal)
+    shape = uu.shape
+    out_d = np.full(shape, np.nan)
+    out_s = np.full(shape, np.nan)
+    out_c = np.full(shape, np.nan)
+    out_d[ok], out_s[ok], out_c[ok] = d, sigma, score
+    reasons = {"masked_or_outside": int((~ok).sum()), "no_integer_peak": int(np.sum(~np.isfinite(d_int))),
+               "not_converged": int(np.sum(np.isfinite(d_int) & (iters < 0)))}
+    low = np.isfinite(out_d) & (out_c < params.min_score)
+    big = np.isfinite(out_d) & ~(out_s <= params.max_sigma_px)
+    out_d[low | big] = np.nan
+    reasons["low_score"] = int(low.sum())
+    reasons["large_sigma"] = int((big & ~low).sum())
+    outl = normalised_median_test(out_d, threshold=params.median_threshold, eps=params.median_eps)
+    out_d[outl] = np.nan
+    reasons["median_test"] = int(outl.sum())
+    out_s[~np.isfinite(out_d)] = np.nan
+    return {"disparity": out_d.astype(np.float32), "disparity_sigma": out_s.astype(np.float32),
+            "score": out_c.astype(np.float32), "reasons": reasons}
+
+
+def is_blank(image, min_std: float = 0.005) -> bool:
+    """A frame with (almost) no contrast: lens cap, projector off, dropped exposure."""
+    return float(np.std(image)) < min_std
