@@ -85,7 +85,7 @@ def integer_search(left, right, us, vs, centre, halfwidth: int, window: int):
 
 
 def refine(left, right_coef, us, vs, d0, window: int, *, order: int = 5, taus=None, temporal: bool = False,
-           max_iter: int = 20, tol: float = 1e-4):
+           max_iter: int = 20, tol: float = 5e-4):
     """IC-GN refinement from the starting disparities d0 (px).
 
     Parameters

@@ -233,10 +233,14 @@ def icgn_refine(left, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, te
             for dy in range(side):
                 for dx in range(side):
                     for i in range(npar):
-                        for j in range(npar):
-                            hess[i, j] += sd[t, dy, dx, i] * sd[t, dy, dx, j]
+                        si = sd[t, dy, dx, i]
+                        for j in range(i, npar):
+                            hess[i, j] += si * sd[t, dy, dx, j]
         if flat:
             continue
+        for i in range(npar):
+            for j in range(i):
+                hess[i, j] = hess[j, i]
         hinv = np.linalg.inv(hess)
         a0 = -d0[p]
         a1 = 0.0

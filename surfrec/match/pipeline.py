@@ -47,7 +47,7 @@ class MatchParams:
     time_window: int = 1
     max_excursion_mm: float = 5.0
     band_px: int | None = None
-    spline_order: int = 5
+    spline_order: int = 3
     rectify_method: str = "bspline3"
     min_score: float = 0.6
     median_threshold: float = 2.0
