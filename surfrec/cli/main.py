@@ -24,6 +24,7 @@ from surfrec.errors import CheckFailed, InputError, ProcessingError
 _SUBCOMMANDS = {
     "synth": ("surfrec.cli.synth", "Render an invented laboratory session with exact ground truth."),
     "inspect": ("surfrec.cli.inspect", "Summarise any file that surfrec writes."),
+    "check-rig": ("surfrec.cli.check_rig", "Check that a calibration still holds, from speckle frames of a run."),
 }
 
 log = logging.getLogger("surfrec")
