@@ -119,7 +119,67 @@ def _summarise_truth(p: Path) -> dict:
     }
 
 
-_SUMMARISERS = {"surfrec.truth": _summarise_truth}
+def _summarise_datum(p: Path) -> dict:
+    from surfrec.io.datumfile import read_datum
+
+    d = read_datum(p)
+    a = d.attrs
+    n = d.plane_normal
+    valid = int(np.count_nonzero(d.valid))
+    noise = d.noise_floor[np.isfinite(d.noise_floor)]
+    res = d.still_residual[np.isfinite(d.still_residual)]
+    return {
+        "path": str(p), "format": "surfrec.datum", "version": 1, "created": a.get("created"),
+        "software": a.get("software"), "rig_sha256": d.rig_sha256, "n_frames": d.n_frames,
+        "plane_normal_left_camera": [round(float(x), 8) for x in n],
+        "plane_offset_mm": round(d.plane_offset, 4),
+        "tilt_from_optical_axis_deg": round(float(np.degrees(np.arccos(min(1.0, abs(float(n[2])))))), 4),
+        "origin_mm": a.get("origin_mm"), "rotate_deg": a.get("rotate_deg"),
+        "fit_rms_mm": round(d.fit_rms_mm, 5),
+        "grid": {"nu": int(d.u.size), "nv": int(d.v.size), "u_px": [float(d.u[0]), float(d.u[-1])],
+                 "v_px": [float(d.v[0]), float(d.v[-1])], "spacing_px": a.get("spacing_px"),
+                 "window_px": a.get("window_px"), "valid": valid,
+                 "valid_fraction": round(valid / d.valid.size, 4)},
+        "disparity_range_px": [round(float(np.nanmin(d.disparity)), 4), round(float(np.nanmax(d.disparity)), 4)],
+        "still_residual": {"x_mm": [float(d.residual_x[0]), float(d.residual_x[-1])],
+                           "y_mm": [float(d.residual_y[0]), float(d.residual_y[-1])],
+                           "step_mm": float(d.residual_x[1] - d.residual_x[0]),
+                           "rms_mm": round(float(np.sqrt(np.mean(res ** 2))), 5),
+                           "peak_to_valley_mm": round(float(res.max() - res.min()), 5),
+                           "degree": a.get("residual_degree")},
+        "noise_floor_median_mm": round(float(np.median(noise)), 5) if noise.size else None,
+    }
+
+
+def _summarise_rig(p: Path) -> dict:
+    from surfrec.io.rigfile import file_sha256, read_rig
+
+    rig = read_rig(p)
+    r = rig.rotation
+    cams = {}
+    for side in ("left", "right"):
+        k = getattr(rig, f"{side}_matrix")
+        cams[side] = {"focal_px": [round(float(k[0, 0]), 3), round(float(k[1, 1]), 3)],
+                      "principal_point_px": [round(float(k[0, 2]), 3), round(float(k[1, 2]), 3)],
+                      "distortion": [float(x) for x in getattr(rig, f"{side}_distortion")]}
+    res = rig.residuals
+    views = res.get("views", [])
+    cal = rig.extra.get("calibration", {})
+    return {
+        "path": str(p), "format": "surfrec.rig", "version": 1, "created": rig.created, "software": rig.software,
+        "image_size": list(rig.image_size), "board": rig.board, "cameras": cams,
+        "baseline_mm": round(rig.baseline_mm, 4),
+        "rotation_left_to_right_deg": round(float(np.degrees(np.arccos(np.clip((np.trace(r) - 1) / 2, -1, 1)))), 4),
+        "convergence_deg": round(float(np.degrees(np.arccos(np.clip(r[2, 2], -1, 1)))), 4),
+        "residuals": {"rms_px": res.get("rms_px"), "epipolar_rms_px": res.get("epipolar_rms_px"),
+                      "views": len(views), "used": sum(1 for v in views if isinstance(v, dict) and v.get("used"))},
+        "mode": cal.get("mode"), "coverage": cal.get("coverage"), "pose_change": cal.get("pose_change"),
+        "warnings": cal.get("warnings", []),
+        "sha256": file_sha256(p),
+    }
+
+
+_SUMMARISERS = {"surfrec.truth": _summarise_truth, "surfrec.datum": _summarise_datum, "surfrec.rig": _summarise_rig}
 
 
 def format_text(summary: dict, indent: int = 0) -> str:

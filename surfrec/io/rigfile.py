@@ -5,8 +5,13 @@ along the optical axis, mm), unrectified; the right camera maps by
 X_right = R X_left + t. Rectified coordinates come back to the rig frame
 through R1 transposed. Disparity d = u_left - u_right in rectified px.
 
-Loading validates everything and names the offending key; writing is
-atomic (temporary file, then rename).
+Loading validates everything and names the offending key: format and
+version, presence, shapes and finiteness of every array, camera matrices of
+the right form, stereo and rectifying rotations that are orthonormal with
+determinant +1, rectified projections of the right form, the residual
+summary and the board description; :func:`check_image_size` checks a rig
+against the images it is used with. Writing is atomic (temporary file, then
+rename).
 """
 
 from __future__ import annotations
@@ -126,12 +131,31 @@ def read_rig(path) -> StereoRig:
 
 
 def rig_from_dict(d, source: str = "rig") -> StereoRig:
-    """Validate a rig dict (as read from rig.json) and build a StereoRig."""
+    """Validate a rig dict (as read from rig.json) and build a StereoRig.
+
+    Parameters
+    ----------
+    d : dict
+        The parsed JSON object (matrices in px, translation in mm).
+    source : str
+        What to call the rig in messages (the file name).
+
+    Returns
+    -------
+    StereoRig
+
+    Raises
+    ------
+    InputError
+        One sentence naming ``source`` and the offending key (see the module
+        documentation for what is checked).
+    """
     if not isinstance(d, dict):
         raise InputError(f"{source}: expected a JSON object")
     if d.get("format") != FORMAT:
         raise InputError(f"{source}: 'format' is {d.get('format')!r}, expected {FORMAT!r}")
-    if d.get("version") != VERSION:
+    version = d.get("version")
+    if type(version) is not int or version != VERSION:  # JSON true would compare equal to 1
         raise InputError(f"{source}: 'version' is {d.get('version')!r}; this surfrec reads version {VERSION}")
     size = _array(d, "image_size", (2,), source)
     if np.any(size < 1) or np.any(size != np.round(size)) or np.any(size > 100000):
@@ -153,14 +177,48 @@ def rig_from_dict(d, source: str = "rig") -> StereoRig:
     rect = {}
     for key, shape in (("R1", (3, 3)), ("R2", (3, 3)), ("P1", (3, 4)), ("P2", (3, 4)), ("Q", (4, 4))):
         rect[key] = _array(d, f"rectification.{key}", shape, source)
+    for key in ("R1", "R2"):
+        r = rect[key]
+        if not np.allclose(r @ r.T, np.eye(3), atol=1e-6) or not math.isclose(np.linalg.det(r), 1.0, abs_tol=1e-6):
+            raise InputError(f"{source}: 'rectification.{key}' is not a rotation matrix (orthonormal, determinant +1)")
+    for key in ("P1", "P2"):
+        p = rect[key]
+        if p[0, 0] <= 0 or p[1, 1] <= 0 or not np.allclose(p[2], [0, 0, 1, 0]):
+            raise InputError(f"{source}: 'rectification.{key}' is not a rectified projection "
+                             "([[f, 0, cx, Tx f], [0, f, cy, Ty f], [0, 0, 1, 0]] with f > 0)")
     residuals = d.get("residuals", {})
     if not isinstance(residuals, dict):
         raise InputError(f"{source}: 'residuals' must be an object")
+    for key in ("rms_px", "epipolar_rms_px"):
+        if key in residuals and residuals[key] is not None:
+            v = residuals[key]
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or v < 0:
+                raise InputError(f"{source}: 'residuals.{key}' must be a non-negative number of px, got {v!r}")
+    if "views" in residuals and not isinstance(residuals["views"], list):
+        raise InputError(f"{source}: 'residuals.views' must be a list")
+    _check_board(d.get("board"), source)
     known = {"format", "version", "image_size", "cameras", "stereo", "rectification", "residuals", "board",
              "created", "software"}
     return StereoRig(image_size=(int(size[0]), int(size[1])), rotation=rot, translation=trans,
                      rectification=rect, residuals=residuals, board=d.get("board"), created=d.get("created"),
                      software=d.get("software"), extra={k: v for k, v in d.items() if k not in known}, **km)
+
+
+def _check_board(board, source):
+    if board is None:
+        return
+    if not isinstance(board, dict):
+        raise InputError(f"{source}: 'board' must be an object (kind, cols, rows, square_mm) or null")
+    kinds = ("chessboard", "circles", "asymmetric-circles")
+    if board.get("kind") not in kinds:
+        raise InputError(f"{source}: 'board.kind' is {board.get('kind')!r}, expected one of {', '.join(kinds)}")
+    for key in ("cols", "rows"):
+        v = board.get(key)
+        if type(v) is not int or v < 2:
+            raise InputError(f"{source}: 'board.{key}' must be a whole number of 2 or more, got {v!r}")
+    v = board.get("square_mm")
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or v <= 0:
+        raise InputError(f"{source}: 'board.square_mm' must be a positive number of mm, got {v!r}")
 
 
 def check_image_size(rig: StereoRig, size, what: str = "images") -> None:

@@ -1,0 +1,1 @@
+"""Figures for people (matplotlib, Agg backend, imported only when a figure is asked for)."""

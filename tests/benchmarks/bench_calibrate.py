@@ -1,0 +1,148 @@
+"""Calibration time and accuracy on a synthetic session, side by side with plain OpenCV.
+
+Usage::
+
+    surfrec synth /tmp/fullcal                      # once (about 4 minutes)
+    python tests/benchmarks/bench_calibrate.py /tmp/fullcal [--repeats 3]
+
+Times (medians of the repeats, one process, one core for OpenCV):
+
+- target detection per image: ours (cv2.findChessboardCornersSB with
+  CALIB_CB_ACCURACY | CALIB_CB_NORMALIZE_IMAGE, then cv2.cornerSubPix) against
+  the sector-based detector alone, with and without CALIB_CB_ACCURACY;
+- the fit: our sequential estimate, the joint refinement, and the reference
+  cv2.calibrateCamera (both cameras) + cv2.stereoCalibrate(CALIB_FIX_INTRINSIC).
+
+Accuracy against the session's truth: focal lengths, principal points,
+pixel-to-ray mapping over the whole image (after the best-fitting rotation),
+baseline, stereo rotation, reprojection and epipolar RMS; with the moved
+scenario's target-moved/ folder present, also the re-posing error.
+"""
+
+from __future__ import annotations
+
+import argparse
+import statistics
+import sys
+import time
+from pathlib import Path
+
+import cv2
+import numpy as np
+
+from surfrec.calib.calibrate import calibrate_rig, repose_rig, rotation_angle_deg
+from surfrec.calib.targets import CHESSBOARD_FLAGS, Board, find_target
+from surfrec.io.images import open_frames
+from surfrec.io.truthfile import read_truth
+from surfrec.synth.cameras import Camera, stereo_from_cameras
+
+BOARD = Board("chessboard", 11, 8, 15.0)
+
+
+def median_time(fn, repeats):
+    times = []
+    out = None
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        out = fn()
+        times.append(time.perf_counter() - t0)
+    return statistics.median(times), out
+
+
+def ray_error_px(matrix, dist, cam, n=(129, 103)):
+    w, h = cam.image_size
+    uu, vv = np.meshgrid(np.linspace(0, w - 1, n[0]), np.linspace(0, h - 1, n[1]))
+    px = np.stack([uu.ravel(), vv.ravel()], -1)
+    crit = (cv2.TERM_CRITERIA_COUNT | cv2.TERM_CRITERIA_EPS, 200, 1e-14)
+
+    def rays(k, d):
+        x = cv2.undistortPoints(px.reshape(-1, 1, 2), k, d, criteria=crit).reshape(-1, 2)
+        r = np.c_[x, np.ones(len(x))]
+        return r / np.linalg.norm(r, axis=1, keepdims=True)
+
+    est, ref = rays(matrix, dist), rays(cam.matrix, cam.distortion)
+    u, _, vt = np.linalg.svd(est.T @ ref)
+    rot = vt.T @ np.diag([1, 1, np.sign(np.linalg.det(vt.T @ u.T))]) @ u.T
+    back, _ = cv2.projectPoints(est @ rot.T, np.zeros(3), np.zeros(3), cam.matrix, cam.distortion)
+    err = np.linalg.norm(back.reshape(-1, 2) - px, axis=1)
+    corner = ((px[:, 0] < 0.15 * w) | (px[:, 0] > 0.85 * w)) & ((px[:, 1] < 0.15 * h) | (px[:, 1] > 0.85 * h))
+    return err, corner
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("session", type=Path)
+    ap.add_argument("--repeats", type=int, default=3)
+    args = ap.parse_args(argv)
+    cv2.setNumThreads(1)
+    s = args.session
+    truth = read_truth(s / "truth.h5")
+    frames = {side: open_frames(str(s / "target" / side)) for side in ("left", "right")}
+    size = frames["left"].size
+    n = len(frames["left"])
+    print(f"session {s}: {n} view pairs, {size[0]}x{size[1]} px; OpenCV {cv2.__version__}, 1 thread")
+
+    # --- detection, per image (a sample of 6 images, each timed `repeats` times)
+    sample = [(side, i) for i in range(0, n, max(1, n // 3)) for side in ("left", "right")][:6]
+    imgs = [frames[side].read_raw(i) for side, i in sample]
+    t_ours = statistics.median(median_time(lambda im=im: find_target(im, BOARD), args.repeats)[0] for im in imgs)
+    t_sb = statistics.median(median_time(lambda im=im: cv2.findChessboardCornersSB(im, (11, 8), flags=CHESSBOARD_FLAGS),
+                                         args.repeats)[0] for im in imgs)
+    t_sb_plain = statistics.median(median_time(
+        lambda im=im: cv2.findChessboardCornersSB(im, (11, 8), flags=cv2.CALIB_CB_NORMALIZE_IMAGE), args.repeats)[0]
+        for im in imgs)
+    print("\ndetection, per image (median over 6 images):")
+    print(f"  ours (SB + ACCURACY + cornerSubPix)      {t_ours:.3f} s  ratio {t_ours / t_sb:.2f}")
+    print(f"  cv2.findChessboardCornersSB ACCURACY     {t_sb:.3f} s  ratio 1.00 (reference)")
+    print(f"  cv2.findChessboardCornersSB, no ACCURACY {t_sb_plain:.3f} s  ratio {t_sb_plain / t_sb:.2f}")
+
+    dets = {side: [find_target(frames[side].read_raw(i), BOARD) for i in range(n)] for side in frames}
+    t_seq, _ = median_time(lambda: calibrate_rig(dets["left"], dets["right"], BOARD, size, refine=False), args.repeats)
+    t_full, calib = median_time(lambda: calibrate_rig(dets["left"], dets["right"], BOARD, size), args.repeats)
+
+    def reference():
+        obj = BOARD.object_points().astype(np.float32)
+        out = []
+        for side in ("left", "right"):
+            pts = [d.points.astype(np.float32) for d in dets[side] if d.found]
+            out.append(cv2.calibrateCamera([obj] * len(pts), pts, size, None, None)[1:3])
+        both = [i for i in range(n) if dets["left"][i].found and dets["right"][i].found]
+        cv2.stereoCalibrate([obj] * len(both), [dets["left"][i].points.astype(np.float32) for i in both],
+                            [dets["right"][i].points.astype(np.float32) for i in both], out[0][0], out[0][1],
+                            out[1][0], out[1][1], size, flags=cv2.CALIB_FIX_INTRINSIC)
+
+    t_ref, _ = median_time(reference, args.repeats)
+    print(f"\nfit of {n} view pairs (median of {args.repeats}):")
+    print(f"  cv2.calibrateCamera x2 + cv2.stereoCalibrate  {t_ref:.3f} s  ratio 1.00 (reference)")
+    print(f"  ours, sequential (with outlier checks)        {t_seq:.3f} s  ratio {t_seq / t_ref:.2f}")
+    print(f"  ours, with the joint refinement (default)     {t_full:.3f} s  ratio {t_full / t_ref:.2f}")
+
+    rig = truth["rigs"]["rig"]
+    cams = {side: Camera.from_dict(rig[side]) for side in ("left", "right")}
+    print("\naccuracy against truth (default calibration):")
+    for side in ("left", "right"):
+        k, kt = getattr(calib, f"{side}_matrix"), cams[side].matrix
+        err, corner = ray_error_px(k, getattr(calib, f"{side}_distortion"), cams[side])
+        print(f"  {side:5s} fx {100 * (k[0, 0] / kt[0, 0] - 1):+.4f} %  fy {100 * (k[1, 1] / kt[1, 1] - 1):+.4f} %  "
+              f"cx {k[0, 2] - kt[0, 2]:+.3f} px  cy {k[1, 2] - kt[1, 2]:+.3f} px  ray RMS {np.sqrt(np.mean(err ** 2)):.4f} px "
+              f"(corner regions {np.sqrt(np.mean(err[corner] ** 2)):.4f}, max {err.max():.4f})")
+    r_t, t_t = stereo_from_cameras(cams["left"], cams["right"])
+    print(f"  baseline {100 * (calib.baseline_mm / np.linalg.norm(t_t) - 1):+.4f} %  "
+          f"stereo rotation {rotation_angle_deg(calib.rotation @ r_t.T):.4f} deg  "
+          f"reprojection RMS {calib.rms_px:.4f} px  epipolar RMS {calib.epipolar_rms_px:.4f} px")
+    if (s / "target-moved").is_dir() and "moved" in truth["rigs"]:
+        moved = {side: open_frames(str(s / "target-moved" / side)) for side in ("left", "right")}
+        dm = {side: [find_target(moved[side].read_raw(i), BOARD) for i in range(len(moved[side]))] for side in moved}
+        new = repose_rig(dm["left"], dm["right"], BOARD, size, left_matrix=calib.left_matrix,
+                         left_distortion=calib.left_distortion, right_matrix=calib.right_matrix,
+                         right_distortion=calib.right_distortion, old_rotation=calib.rotation,
+                         old_translation=calib.translation)
+        r_m, t_m = stereo_from_cameras(*(Camera.from_dict(truth["rigs"]["moved"][x]) for x in ("left", "right")))
+        print(f"  re-posing from {len(dm['left'])} views: rotation {rotation_angle_deg(new.rotation @ r_m.T):.4f} deg, "
+              f"translation {np.linalg.norm(new.translation - t_m):.3f} mm from the moved truth; "
+              f"reported move {new.pose_change['rotation_deg']:.4f} deg")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
