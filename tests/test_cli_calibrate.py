@@ -60,7 +60,7 @@ def test_calibrate_writes_a_valid_rig(calibrated, session):
     assert rig.residuals["rms_px"] < 0.2  # issue 3, "done when"
     assert rig.residuals["epipolar_rms_px"] < 0.1
     views = rig.residuals["views"]
-    assert len(views) == 12 and all({"name", "rms_px", "used"} <= set(v) for v in views)
+    assert len(views) == 16 and all({"name", "rms_px", "used"} <= set(v) for v in views)
     cal = d["calibration"]
     assert {"baseline_mm", "convergence_deg", "coverage", "warnings"} <= set(cal)
     # Against truth: baseline within 0.05 %, stereo rotation within 0.05 degrees (issue 3).
@@ -81,7 +81,7 @@ def test_inspect_summarises_the_rig(calibrated):
     res = run("inspect", out / "rig.json", "--json")
     assert res.returncode == 0, res.stderr
     s = json.loads(res.stdout)
-    assert s["format"] == "surfrec.rig" and s["residuals"]["views"] == 12 and s["residuals"]["used"] == 12
+    assert s["format"] == "surfrec.rig" and s["residuals"]["views"] == 16 and s["residuals"]["used"] == 16
     assert 245 < s["baseline_mm"] < 255 and len(s["sha256"]) == 64
 
 
@@ -221,7 +221,7 @@ def test_too_few_views_for_reposing(calibrated, session, tmp_path):
 def test_unequal_view_counts(session, tmp_path):
     res = run("calibrate", "--left", session / "target" / "left", "--right", session / "target-moved" / "right",
               "--board", "11x8", "--square", "15", "-o", tmp_path / "rig.json")
-    _one_line_error(res, "left images: 12 frames but right images: 4 frames; frames are paired by index")
+    _one_line_error(res, "left images: 16 frames but right images: 4 frames; frames are paired by index")
 
 
 def test_help_names_the_rules_of_thumb():

@@ -76,7 +76,7 @@ def _bad_cases(s, work, rig, datum):
         (["--fps", 500, "--timestamps", s / "waves" / "timestamps.csv"], "exactly one of --fps or --timestamps"),
         (["--timestamps", short], "has 2 rows but there are 6 frame pairs"),
         (["--right", fewer], "6 frames but right images: 5 frames"),
-        (["--left", s / "target" / "left"], "12 frames but right images: 6 frames"),
+        (["--left", s / "target" / "left"], "16 frames but right images: 6 frames"),
         (["--start", 10], "selects no frames"),
         (["--window", 14], "must be an odd whole number"),
         (["--datum", rig], "not a readable HDF5 file"),

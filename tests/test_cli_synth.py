@@ -23,7 +23,7 @@ def test_quick_session_layout(session):
     # Layout fixed by design.md, "A synthetic session".
     out, res = session
     assert res.stdout.strip() == str(out)
-    for group, n in (("target", 12), ("still", 3), ("waves", 6)):
+    for group, n in (("target", 16), ("still", 3), ("waves", 6)):
         left = open_frames(str(out / group / "left"))
         right = open_frames(str(out / group / "right"))
         assert len(left) == len(right) == n
@@ -54,7 +54,7 @@ def test_truth_file_holds_the_exact_surface(session):
     # The amplitude step of the waves scenario: 1.0 mm then 1.1 mm (design.md).
     assert np.nanmax(h[-1] - surface.height(xx, yy, g["time"][-1])) < 1e-5
     tg = t["groups"]["target"]
-    assert tg["corners_left"].shape == (12, 88, 2)
+    assert tg["corners_left"].shape == (16, 88, 2)
 
 
 def test_inspect_truth_text_and_json(session):

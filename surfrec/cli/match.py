@@ -32,9 +32,9 @@ def _odd(ctx, param, value):
 @click.option("--timestamps", type=click.Path(dir_okay=False, exists=False), default=None, metavar="CSV",
               help="Timestamps file with header frame,left_s,right_s (or give --fps).")
 @click.option("--window", type=int, default=None, callback=_odd, metavar="PX",
-              help="Correlation window side, odd px (default: about 3.5 speckles, from the first frame).")
-@click.option("--spacing", type=click.IntRange(min=1), default=4, show_default=True, metavar="PX",
-              help="Grid spacing, px.")
+              help="Correlation window side, odd px (default: the datum's, else about 3.5 speckles).")
+@click.option("--spacing", type=click.IntRange(min=1), default=None, metavar="PX",
+              help="Grid spacing, px (default: the datum's, else 4).")
 @click.option("--time-window", type=int, default=1, show_default=True, callback=_odd, metavar="N",
               help="Spatio-temporal window: correlate N consecutive frames together (odd). Each frame brings a "
                    "fresh speckle pattern, so N frames carry N times the information of one and allow a smaller "
@@ -101,7 +101,9 @@ def command(rig_path, datum_path, left, right, output, fps, timestamps, window, 
     frames = list(range(start, stop, step))
 
     speckle = speckle_size_px(lf[frames[0]])
-    window = window or default_window(speckle)
+    # The datum's grid by default, so the reference disparity needs no interpolation.
+    window = window or _int_attr(datum.attrs, "window_px") or default_window(speckle)
+    spacing = spacing or _int_attr(datum.attrs, "spacing_px") or 4
     params = MatchParams(window=window, spacing=spacing, time_window=time_window, max_excursion_mm=max_excursion,
                          rectify_method=rectify_method)
     rectifier = FrameRectifier(rig, rectify_method)
@@ -162,6 +164,14 @@ def command(rig_path, datum_path, left, right, output, fps, timestamps, window, 
         raise
     log.info("wrote %s: %d frames, %.2f s per frame pair", out, len(frames), wall / len(frames))
     click.echo(str(out))
+
+
+def _int_attr(attrs, key):
+    try:
+        value = int(attrs.get(key))
+    except (TypeError, ValueError):
+        return None
+    return value if value > 0 else None
 
 
 def _mask_on_grid(mask_path, rig, rectifier, gu, gv, window):

@@ -173,6 +173,13 @@ def _pose(centre, tilt_x, tilt_y, yaw, board) -> BoardView:
     return BoardView(r, np.asarray(centre, float) - r @ half, "both")
 
 
+def _corner_pose(cam: Camera, pu: float, pv: float, z: float, tilt, board: dict) -> BoardView:
+    """Board pose whose centre is seen at pixel (pu, pv), at height z mm."""
+    ray = cam.pixel_rays(np.array([pu]), np.array([pv]))[0]
+    c0 = cam.centre + ray * (z - cam.centre[2]) / ray[2]
+    return _pose(c0, *tilt, board)
+
+
 def _board_views(rng, left: Camera, right: Camera, board: dict, n_central: int, n_corner: int):
     views = []
     tries = 0
@@ -195,18 +202,30 @@ def _board_views(rng, left: Camera, right: Camera, board: dict, n_central: int, 
             best = None
             for _ in range(60):
                 z = rng.uniform(10, 160)
-                tilt = (rng.uniform(-20, 20), rng.uniform(-20, 20), rng.uniform(-15, 15))
-                # Walk from the image corner toward the centre until the board fits.
-                for frac in np.linspace(0.12, 0.45, 34):
+                # Nearly square to the image, so the board's own corner can reach the image corner.
+                tilt = (rng.uniform(-15, 15), rng.uniform(-15, 15), rng.uniform(-4, 4))
+                # Walk from the image corner toward the centre until the board fits...
+                pix = None
+                for frac in np.linspace(0.02, 0.45, 44):
                     pu = cu + (w / 2 - cu) * frac * 2
                     pv = cv + (h / 2 - cv) * frac * 2
-                    ray = cam.pixel_rays(np.array([pu]), np.array([pv]))[0]
-                    c0 = cam.centre + ray * (z - cam.centre[2]) / ray[2]
-                    v = _pose(c0, *tilt, board)
+                    v = _corner_pose(cam, pu, pv, z, tilt, board)
                     if board_fully_visible(v, board, cam):
+                        pix = [pu, pv]
                         break
-                else:
+                if pix is None:
                     continue
+                # ...then slide it along each image axis toward the corner while it still
+                # fits, so its outer corners reach the image's corner cells.
+                step = 0.01 * w
+                for axis, target in ((0, cu), (1, cv)):
+                    while True:
+                        trial = list(pix)
+                        trial[axis] += np.sign(target - trial[axis]) * step
+                        cand = _corner_pose(cam, trial[0], trial[1], z, tilt, board)
+                        if abs(target - pix[axis]) < step or not board_fully_visible(cand, board, cam):
+                            break
+                        pix, v = trial, cand
                 single = not board_fully_visible(v, board, other)
                 v.aimed_at = f"{cam_name}-corner"
                 if single == want_single:
@@ -241,7 +260,7 @@ def build_scenario(name: str = "waves", *, quick: bool = False, seed: int = 0) -
     lighting = Lighting()
     board = {"kind": "chessboard", "cols": 11, "rows": 8, "square_mm": 15.0, "margin_mm": 10.0}
     depth = TANK["depth_mm"]
-    n_central, n_corner = (8, 2) if quick else (12, 4)
+    n_central, n_corner = (8, 4) if quick else (12, 4)
     rigs = {"rig": Rig(left, right, projector)}
     views = _board_views(rng, left, right, board, n_central, n_corner)
     n_still = 3 if quick else 6
