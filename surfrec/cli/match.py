@@ -78,8 +78,6 @@ def command(rig_path, datum_path, left, right, output, fps, timestamps, window, 
                                         reference_on_grid, time_window_indices)
     from surfrec.match.rectification import FrameRectifier
     from surfrec.match.speckle import default_window, speckle_size_px
-    from surfrec.match.validity import window_fully_inside
-
     if (fps is None) == (timestamps is None):
         raise InputError("give exactly one of --fps or --timestamps")
     out = check_output(output, force=force)
@@ -179,6 +177,7 @@ def _mask_on_grid(mask_path, rig, rectifier, gu, gv, window):
 
     from surfrec.errors import InputError
     from surfrec.io.images import open_frames
+    from surfrec.match.validity import window_fully_inside
 
     m = open_frames(mask_path, expected_size=rig.image_size, name="mask")
     if len(m) != 1:
