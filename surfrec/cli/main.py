@@ -23,11 +23,14 @@ from surfrec.errors import CheckFailed, InputError, ProcessingError
 # name -> (module, one-line help); the module defines a click command `command`.
 _SUBCOMMANDS = {
     "synth": ("surfrec.cli.synth", "Render an invented laboratory session with exact ground truth."),
-    "datum": ("surfrec.cli.datum", "Still-water datum from a few still frames: plane, datum frame, residual (datum.h5)."),
-    "match": ("surfrec.cli.match", "Match the speckle between the views of every frame pair: disparity.h5."),
-    "inspect": ("surfrec.cli.inspect", "Summarise any file that surfrec writes."),
     "calibrate": ("surfrec.cli.calibrate", "Calibrate a stereo rig from target views (or re-pose it) into rig.json."),
     "check-rig": ("surfrec.cli.check_rig", "Check that a calibration still holds, from speckle frames of a run."),
+    "datum": ("surfrec.cli.datum", "Still-water datum from a few still frames: plane, datum frame, residual (datum.h5)."),
+    "match": ("surfrec.cli.match", "Match the speckle between the views of every frame pair: disparity.h5."),
+    "heights": ("surfrec.cli.heights", "Triangulate and resample the disparities onto a regular grid: heights.h5."),
+    "inspect": ("surfrec.cli.inspect", "Summarise any file that surfrec writes."),
+    "preview": ("surfrec.cli.preview", "Draw one frame of heights.h5 as a height map (PNG), with a point's time series."),
+    "assess": ("surfrec.cli.assess", "Accuracy of heights.h5: against a synthetic session's truth, or its noise floor."),
 }
 
 log = logging.getLogger("surfrec")
