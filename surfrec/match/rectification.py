@@ -24,6 +24,8 @@ from numba import njit, prange
 from scipy import ndimage
 
 from surfrec.calib.rectify import rectification_maps
+from surfrec.match.kernels import _bspline3_weights as _w3
+from surfrec.match.kernels import _bspline5_weights as _w5
 
 METHODS = ("linear", "cubic", "lanczos4", "bspline3", "bspline5")
 DEFAULT_METHOD = "bspline3"
@@ -80,32 +82,6 @@ class FrameRectifier:
         mx, my = self.maps["left"]
         m = (np.asarray(mask_original) != 0).astype(np.uint8)
         return cv2.remap(m, mx, my, cv2.INTER_NEAREST, borderMode=cv2.BORDER_CONSTANT, borderValue=0) != 0
-
-
-@njit(cache=True, inline="always")
-def _w3(f, w):
-    g = 1.0 - f
-    w[0] = g * g * g / 6.0
-    w[1] = (3.0 * f * f * f - 6.0 * f * f + 4.0) / 6.0
-    w[2] = (-3.0 * f * f * f + 3.0 * f * f + 3.0 * f + 1.0) / 6.0
-    w[3] = f * f * f / 6.0
-
-
-@njit(cache=True, inline="always")
-def _w5(f, w):
-    g = 1.0 - f
-    w[0] = g * g * g * g * g / 120.0
-    w[5] = f * f * f * f * f / 120.0
-    x = f + 1.0
-    x2 = x * x
-    w[1] = (51.0 + 75.0 * x - 210.0 * x2 + 150.0 * x2 * x - 45.0 * x2 * x2 + 5.0 * x2 * x2 * x) / 120.0
-    x = 2.0 - f
-    x2 = x * x
-    w[4] = (51.0 + 75.0 * x - 210.0 * x2 + 150.0 * x2 * x - 45.0 * x2 * x2 + 5.0 * x2 * x2 * x) / 120.0
-    x2 = f * f
-    w[2] = (66.0 - 60.0 * x2 + 30.0 * x2 * x2 - 10.0 * x2 * x2 * f) / 120.0
-    x2 = g * g
-    w[3] = (66.0 - 60.0 * x2 + 30.0 * x2 * x2 - 10.0 * x2 * x2 * g) / 120.0
 
 
 @njit(parallel=True, cache=True)
