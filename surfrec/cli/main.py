@@ -118,8 +118,8 @@ def cli():
     """surfrec: calibrated height fields h(x, y, t) of small water waves from a
     speckle-lit stereo camera rig.
 
-    Stages: synth -> calibrate -> datum -> match -> heights -> inspect/preview/assess,
-    and run for whole overnight runs. Every command has -v/--verbose and -q/--quiet.
+    Stages: synth -> calibrate (check-rig) -> datum -> match -> heights ->
+    inspect/preview/assess; batch runs of whole nights and the wave analysis are to come. Every command has -v/--verbose and -q/--quiet.
     Exit status: 0 success, 1 failure while processing, 2 bad usage or input,
     3 a check that ran and failed.
     """
