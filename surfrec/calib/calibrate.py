@@ -396,7 +396,7 @@ def coverage(points, image_size, *, cells=COVERAGE_CELLS):
     occupied = np.zeros((nr, nc), bool)
     pts = [np.asarray(p, float).reshape(-1, 2) for p in (points if isinstance(points, (list, tuple)) else [points])]
     if pts:
-        p = np.concatenate(pts) if pts else np.zeros((0, 2))
+        p = np.concatenate(pts)
         col = np.clip(((p[:, 0] + 0.5) / w * nc).astype(int), 0, nc - 1)
         row = np.clip(((p[:, 1] + 0.5) / h * nr).astype(int), 0, nr - 1)
         occupied[row, col] = True
@@ -420,11 +420,6 @@ def rectified_row_errors(left_points, right_points, left_matrix, left_distortion
     ul = _rectify_points(left_points, left_matrix, left_distortion, rectification["R1"], rectification["P1"])
     ur = _rectify_points(right_points, right_matrix, right_distortion, rectification["R2"], rectification["P2"])
     return ul[:, 1] - ur[:, 1]
-
-
-def rectify_points(points, matrix, distortion, rect_rotation, rect_projection) -> np.ndarray:
-    """Distorted image points (N, 2) px -> rectified image points (N, 2) px (cv2.undistortPoints)."""
-    return _rectify_points(points, matrix, distortion, rect_rotation, rect_projection)
 
 
 def rotation_angle_deg(rotation) -> float:
@@ -503,13 +498,14 @@ def calibrate_rig(left: list, right: list, board: Board, image_size, *, names=No
     stereo = _stereo(both, left, right, obj, kl, dl, kr, dr, image_size, reports, board)
     model = {"left_matrix": kl, "left_distortion": dl, "right_matrix": kr, "right_distortion": dr,
              "rotation": stereo.rotation, "translation": stereo.translation}
-    residuals = _sequential_residuals(reports, fits, stereo)
     joint = None
     if refine:
         joint = _joint(reports, left, right, obj, fits, stereo)
         model = {k: getattr(joint, k) for k in model}
         residuals = {i: (joint.residuals_left[i], joint.residuals_right[i]) for i in range(len(reports))
                      if reports[i].roles}
+    else:
+        residuals = _sequential_residuals(reports, fits, stereo)
     result = _finish("full", image_size, board, reports, model, residuals, stereo, fits["left"], fits["right"],
                      left, right)
     result.joint_fit = joint

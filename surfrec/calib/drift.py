@@ -582,7 +582,6 @@ def refine_shift(reference: np.ndarray, moving: np.ndarray, points, initial, *, 
     textured = (det > 1e-12 * np.maximum(hess[:, 0, 0] * hess[:, 1, 1], 1e-300)) & (f_norm > 1e-9)
     coeffs = ndimage.spline_filter(moving, order=3, mode="mirror")
     active = textured.copy()
-    g = np.zeros_like(f)
     for _ in range(max_iterations):
         idx = np.nonzero(active)[0]
         if idx.size == 0:
@@ -603,7 +602,6 @@ def refine_shift(reference: np.ndarray, moving: np.ndarray, points, initial, *, 
         # Inverse composition of translations: the update is subtracted.
         shift[idx, 0] -= step_x
         shift[idx, 1] -= step_y
-        g[idx] = g_i
         far = np.hypot(*(shift[idx] - start[idx]).T) > max_step
         gone = blank | far | ~np.isfinite(shift[idx]).all(axis=1)
         textured[idx[gone]] = False

@@ -8,6 +8,7 @@ import math
 
 import click
 
+from surfrec.cli.inspect import _finite_or_none, _jsonable
 from surfrec.cli.options import json_option, verbosity
 
 log = logging.getLogger("surfrec")
@@ -351,23 +352,3 @@ def _wrapped(lines, width=100):
         out.extend(textwrap.wrap(line, width=width, subsequent_indent=lead + "  ", break_long_words=False,
                                  break_on_hyphens=False))
     return out
-
-
-def _finite_or_none(obj):
-    """Strict JSON has no NaN or infinity: those become null."""
-    if hasattr(obj, "tolist") and not isinstance(obj, float):
-        obj = obj.tolist()  # numpy arrays and scalars
-    if isinstance(obj, dict):
-        return {k: _finite_or_none(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_finite_or_none(v) for v in obj]
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    return obj
-
-
-def _jsonable(x):
-    try:
-        return x.tolist()
-    except AttributeError:
-        return str(x)

@@ -168,22 +168,27 @@ def command(disparity_path, rig_path, datum_path, output, grid_step, extent, cir
     coverage = np.empty(n)
     abs95 = []
     t0 = time.monotonic()
+    import h5py
+
     try:
-        with Progress(n, "heights") as progress:
+        # Opened once (validated above by read_disparity); blocks of frames are read as they are
+        # needed, while times and flags come from the metadata already in hand.
+        with Progress(n, "heights") as progress, h5py.File(disparity_path, "r") as dfile:
             for b0 in range(0, n, _BLOCK_FRAMES):
-                block = read_disparity(disparity_path, frames=slice(b0, min(n, b0 + _BLOCK_FRAMES)))
+                b1 = min(n, b0 + _BLOCK_FRAMES)
+                block = {"disparity": dfile["disparity"][b0:b1], "disparity_sigma": dfile["disparity_sigma"][b0:b1]}
                 for k in range(block["disparity"].shape[0]):
                     i = b0 + k
                     h, s, st = resampler(block["disparity"][k], block["disparity_sigma"][k])
                     totals.add(st)
                     ok = np.isfinite(h)
                     coverage[i] = ok[fp].mean()
-                    flags = int(block["frame_flags"][i])
+                    flags = int(meta["frame_flags"][i])
                     if coverage[i] < _FEW_HEIGHTS:
                         flags |= FLAG_FEW_HEIGHTS
                     if ok.any():
                         abs95.append(float(np.percentile(np.abs(h[ok]), 95)))
-                    writer.append(float(block["time"][i]), h, s, flags)
+                    writer.append(float(meta["time"][i]), h, s, flags)
                     progress(i + 1)
         wall = time.monotonic() - t0
         h95 = float(np.median(abs95)) if abs95 else float("nan")
@@ -225,6 +230,7 @@ def _provenance(rig_path, rig_hash, datum, datum_path, datum_hash, disparity_pat
     import json
     from pathlib import Path
 
+    from surfrec.io.heightsfile import _json_default
     from surfrec.io.rigfile import file_sha256
 
     datum_root = {"world_to_left_camera": datum.world_to_left_camera.reshape(-1).tolist(),
@@ -293,13 +299,3 @@ def _systematic(rig, datum, still_correction, h95, meta, resampler) -> dict:
                               "(systematic_scale_relative) at |h| = abs_height_p95_mm; NaN scale: the rig gives no "
                               "parameter uncertainties (counted as 0)")
     return out
-
-
-def _json_default(v):
-    import numpy as np
-
-    if isinstance(v, np.generic):
-        return v.item()
-    if isinstance(v, np.ndarray):
-        return v.tolist()
-    return str(v)

@@ -146,7 +146,9 @@ def command(rig_path, datum_path, left, right, output, fps, timestamps, window, 
                     nan = np.full((len(gv), len(gu)), np.nan, np.float32)
                     res = {"disparity": nan, "disparity_sigma": nan, "score": nan, "reasons": {}}
                 else:
-                    res = match_frame(lefts, rights, taus, gu, gv, centre, band, params, measure=measure)
+                    coef = np.stack([cache.right_coefficients(j, params.spline_order) for j in idx])
+                    res = match_frame(lefts, rights, taus, gu, gv, centre, band, params, measure=measure,
+                                      right_coef=coef)
                 valid = np.isfinite(res["disparity"]).mean()
                 if valid < 0.5 and not flags:
                     flags |= FLAG_FEW_VALID

@@ -185,7 +185,7 @@ def nice_step(spacing_mm: float) -> float:
     return float(10.0 ** k)
 
 
-def default_grid_step(still_xy) -> float:
+def default_grid_step(still_xy, spacing: float | None = None) -> float:
     """Default output grid step from the spacing of the matches on the still water, mm.
 
     Parameters
@@ -197,9 +197,9 @@ def default_grid_step(still_xy) -> float:
     -------
     mm: :func:`nice_step` of the median spacing of neighbouring points along
     the coarser grid direction (one node per match: finer grids add no
-    information, coarser ones throw it away).
+    information, coarser ones throw it away). ``spacing``: that median, if already at hand.
     """
-    spacing = _median_spacing(still_xy)
+    spacing = _median_spacing(still_xy) if spacing is None else spacing
     if not np.isfinite(spacing):
         raise ValueError("no two neighbouring matching points on the still water")
     return nice_step(spacing)
@@ -416,6 +416,7 @@ class HeightResampler:
         self.v = np.asarray(self.v, np.float64)
         self.x = np.asarray(self.x, np.float64)
         self.y = np.asarray(self.y, np.float64)
+        self._uu, self._vv = np.meshgrid(self.u, self.v)  # the fixed matching grid, for every frame
         for name, g in (("u", self.u), ("v", self.v)):
             step = np.diff(g)
             if g.size < 2 or not np.all(step > 0) or np.ptp(step) > 1e-9 * abs(step[0]):
@@ -451,8 +452,11 @@ class HeightResampler:
         d = np.asarray(disparity, np.float64)
         if d.shape != (self.v.size, self.u.size):
             raise ValueError(f"disparity has shape {d.shape}, expected {(self.v.size, self.u.size)} (Nv, Nu)")
-        pts, gain = heights_on_matching_grid(self.u, self.v, d, self.q, self.r1, self.world_to_left_camera)
-        h_nodes = np.ascontiguousarray(pts[..., 2])
+        m = np.asarray(self.world_to_left_camera, np.float64)
+        # heights_on_matching_grid, with the grid's meshgrid made once (in __post_init__)
+        cam = triangulate(self._uu, self._vv, d, self.q, self.r1)
+        h_nodes = np.ascontiguousarray(((cam - m[:3, 3]) @ m[:3, :3])[..., 2])
+        gain = height_gain(self._uu, self._vv, d, self.q, self.r1, m)
         if disparity_sigma is None:
             s_nodes = np.full(d.shape, np.nan)
         else:
@@ -684,8 +688,8 @@ def plan_grid(grid_u, grid_v, r1, p1, datum, *, step=None, extent=None, circles=
     """
     m = datum.world_to_left_camera
     still_grid = still_water_points(grid_u, grid_v, m, r1, p1)
-    spacing = default_grid_step(still_grid)
     point_spacing = _median_spacing(still_grid)
+    spacing = default_grid_step(still_grid, point_spacing)
     ref = still_water_points(datum.u, datum.v, m, r1, p1)[np.asarray(datum.valid, bool)]
     ref = ref[np.all(np.isfinite(ref), axis=1)]
     if ref.size == 0:

@@ -468,8 +468,6 @@ def _json_default(v):
 def _plain(v):
     if isinstance(v, bytes):
         return v.decode("utf-8", "replace")
-    if isinstance(v, np.bytes_):
-        return bytes(v).decode("utf-8", "replace")
     if isinstance(v, np.ndarray) and v.dtype.kind in "SO":
         return [_plain(x) for x in v.tolist()]
     if isinstance(v, np.generic):

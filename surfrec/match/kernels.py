@@ -73,6 +73,24 @@ def _sample_row(coef, t, row, x, order, w):
             + w[3] * coef[t, row, i + 1] + w[4] * coef[t, row, i + 2] + w[5] * coef[t, row, i + 3])
 
 
+@njit(cache=True, inline="always")
+def _centre_window(left, t, u, v, hw, out):
+    """Write frame t's window about (u, v) minus its mean into out[t]; return its norm (0 if flat)."""
+    side = 2 * hw + 1
+    s = 0.0
+    for dy in range(side):
+        for dx in range(side):
+            s += left[t, v - hw + dy, u - hw + dx]
+    mean = s / (side * side)
+    ss = 0.0
+    for dy in range(side):
+        for dx in range(side):
+            val = left[t, v - hw + dy, u - hw + dx] - mean
+            out[t, dy, dx] = val
+            ss += val * val
+    return np.sqrt(ss) if ss > _EPS else 0.0
+
+
 @njit(parallel=True, cache=True)
 def zncc_search(left, right, us, vs, centre, halfwidth, hw, scores):
     """ZNCC of each point's left window against right windows at integer disparities.
@@ -104,21 +122,11 @@ def zncc_search(left, right, us, vs, centre, halfwidth, hw, scores):
         tpl = np.empty((T, side, side))
         flat = False
         for t in range(T):
-            s = 0.0
-            for dy in range(side):
-                for dx in range(side):
-                    s += left[t, v - hw + dy, u - hw + dx]
-            mean = s / m
-            ss = 0.0
-            for dy in range(side):
-                for dx in range(side):
-                    val = left[t, v - hw + dy, u - hw + dx] - mean
-                    tpl[t, dy, dx] = val
-                    ss += val * val
-            if ss <= _EPS:
+            norm = _centre_window(left, t, u, v, hw, tpl)
+            if norm == 0.0:
                 flat = True
                 break
-            inv = 1.0 / np.sqrt(ss)
+            inv = 1.0 / norm
             for dy in range(side):
                 for dx in range(side):
                     tpl[t, dy, dx] *= inv
@@ -202,21 +210,10 @@ def icgn_refine(left, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, te
         hess = np.zeros((npar, npar))
         flat = False
         for t in range(T):
-            s = 0.0
-            for dy in range(side):
-                for dx in range(side):
-                    s += left[t, v - hw + dy, u - hw + dx]
-            mean = s / m
-            ss = 0.0
-            for dy in range(side):
-                for dx in range(side):
-                    val = left[t, v - hw + dy, u - hw + dx] - mean
-                    fn[t, dy, dx] = val
-                    ss += val * val
-            if ss <= _EPS:
+            norm = _centre_window(left, t, u, v, hw, fn)
+            if norm == 0.0:
                 flat = True
                 break
-            norm = np.sqrt(ss)
             for dy in range(side):
                 row = v - hw + dy
                 for dx in range(side):

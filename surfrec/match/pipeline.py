@@ -15,7 +15,7 @@ import numpy as np
 from scipy import ndimage
 
 from surfrec.match.correlate import integer_search, refine, row_spline_coefficients
-from surfrec.match.validity import normalised_median_test, window_fully_inside
+from surfrec.match.validity import normalised_median_test
 
 # frame_flags bits (disparity.h5, heights.h5)
 FLAG_DROPPED = 1
@@ -130,16 +130,29 @@ class RectifiedCache:
         self.store = OrderedDict()
 
     def get(self, i):
+        """(left, right) rectified float32 frames of frame i."""
+        return self._entry(i)[:2]
+
+    def right_coefficients(self, i, order: int):
+        """Row B-spline coefficients of frame i's rectified right image, computed once per frame
+        (a spatio-temporal window uses each frame in several windows)."""
+        entry = self._entry(i)
+        if entry[2] is None or entry[2][0] != order:
+            entry[2] = (order, row_spline_coefficients(entry[1], order))
+        return entry[2][1]
+
+    def _entry(self, i):
         if i not in self.store:
             left = self.rectifier.left(self.left_frames[i])
             right = self.rectifier.right(self.right_frames[i])
-            self.store[i] = (left, right)
+            self.store[i] = [left, right, None]
             while len(self.store) > self.keep:
                 self.store.popitem(last=False)
         return self.store[i]
 
 
-def match_frame(lefts, rights, taus, grid_u, grid_v, centre, band, params: MatchParams, *, measure=None):
+def match_frame(lefts, rights, taus, grid_u, grid_v, centre, band, params: MatchParams, *, measure=None,
+                right_coef=None):
     """Match one frame (or one spatio-temporal stack) on the grid.
 
     Parameters
@@ -150,6 +163,7 @@ def match_frame(lefts, rights, taus, grid_u, grid_v, centre, band, params: Match
         (the datum's reference disparity), NaN where not measured.
     band : half-width of the integer search, px.
     measure : (Nv, Nu) bool or None, points allowed by the mask.
+    right_coef : (T, H, W) row B-spline coefficients of ``rights`` when already at hand.
 
     Returns
     -------
@@ -165,7 +179,7 @@ def match_frame(lefts, rights, taus, grid_u, grid_v, centre, band, params: Match
     lefts = np.ascontiguousarray(lefts, dtype=np.float32)
     rights = np.ascontiguousarray(rights, dtype=np.float32)
     d_int, s_int, _ = integer_search(lefts, rights, us, vs, c, band, params.window)
-    coef = row_spline_coefficients(rights, params.spline_order)
+    coef = right_coef if right_coef is not None else row_spline_coefficients(rights, params.spline_order)
     temporal = lefts.shape[0] > 1
     d, p, sigma, score, iters = refine(lefts, coef, us, vs, d_int, params.window, order=params.spline_order,
                                        taus=taus, temporal=temporal)

@@ -38,6 +38,7 @@ import numpy as np
 
 from surfrec.geometry.plane import PolynomialSurface, robust_polynomial_surface
 from surfrec.match.correlate import PointMatches, integer_search, match_points, row_spline_coefficients
+from surfrec.match.pipeline import matching_grid  # noqa: F401  (re-exported: datum and match share one grid rule)
 
 # Coarse points whose mean ZNCC falls below this are not used in the fit: a
 # random texture of ~50 independent samples gives |ZNCC| < 0.3 for unrelated
@@ -87,25 +88,6 @@ class FrameMatches:
     score: np.ndarray
     attempted: np.ndarray
     reasons: dict
-
-
-def matching_grid(image_size, spacing: int, window: int):
-    """Regular grid of window centres in the rectified left image, px.
-
-    The same rule as ``surfrec match`` (surfrec.match.pipeline.matching_grid),
-    so that the datum's reference disparity lies on the grid the matcher
-    uses when the spacing and window agree: columns and rows from
-    ``window // 2 + 4`` (room for the window and the interpolation taps)
-    every ``spacing`` px.
-
-    Returns
-    -------
-    u (Nu,), v (Nv,) int64 px.
-    """
-    w, h = image_size
-    margin = window // 2 + 4
-    return (np.arange(margin, w - margin, spacing, dtype=np.int64),
-            np.arange(margin, h - margin, spacing, dtype=np.int64))
 
 
 def valid_region(map_x, map_y, source_size) -> np.ndarray:

@@ -84,6 +84,16 @@ class FrameRectifier:
         return cv2.remap(m, mx, my, cv2.INTER_NEAREST, borderMode=cv2.BORDER_CONSTANT, borderValue=0) != 0
 
 
+@njit(cache=True, inline="always")
+def _mirror(i, n):
+    # Mirror boundary (no repeated edge sample), as scipy's spline prefilter with mode "mirror" assumes.
+    if i < 0:
+        i = -i
+    elif i >= n:
+        i = 2 * n - 2 - i
+    return min(max(i, 0), n - 1)
+
+
 @njit(parallel=True, cache=True)
 def _remap_bspline(coef, mx, my, order, out):
     """Sample B-spline coefficients at float positions (mirror boundary)."""
@@ -107,21 +117,9 @@ def _remap_bspline(coef, mx, my, order, out):
                 _w5(y - iy, wy)
             acc = 0.0
             for j in range(taps):
-                yy = iy - half + j
-                # mirror boundary, as the prefilter assumes
-                if yy < 0:
-                    yy = -yy
-                elif yy >= H:
-                    yy = 2 * H - 2 - yy
-                yy = min(max(yy, 0), H - 1)
+                yy = _mirror(iy - half + j, H)
                 racc = 0.0
                 for i in range(taps):
-                    xx = ix - half + i
-                    if xx < 0:
-                        xx = -xx
-                    elif xx >= W:
-                        xx = 2 * W - 2 - xx
-                    xx = min(max(xx, 0), W - 1)
-                    racc += wx[i] * coef[yy, xx]
+                    racc += wx[i] * coef[yy, _mirror(ix - half + i, W)]
                 acc += wy[j] * racc
             out[r, c] = acc

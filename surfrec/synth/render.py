@@ -229,20 +229,26 @@ class _HarmonicAlongRays:
         return x, y, z, hx, hy
 
 
-def _post_hides(bundle: RayBundle, post: Post, z_water, rows):
-    """True where the ray meets the post above the water it would otherwise see."""
-    ax = bundle.centre[0] - post.centre[0]
-    ay = bundle.centre[1] - post.centre[1]
-    bx, by = bundle.sx[rows], bundle.sy[rows]
+def _circle_crossings(ax, ay, bx, by, radius):
+    """Parameters s where the line (ax, ay) + s (bx, by) meets a circle about the origin.
+
+    Returns hit (the line crosses it) and the two roots s_lo <= s_hi of
+    |a + s b|^2 = radius^2 (meaningless where not hit).
+    """
     qa = bx * bx + by * by
     qb = 2.0 * (ax * bx + ay * by)
-    qc = ax * ax + ay * ay - post.radius ** 2
+    qc = ax * ax + ay * ay - radius ** 2
     disc = qb * qb - 4.0 * qa * qc
     hit = disc > 0
     sq = np.sqrt(np.where(hit, disc, 0.0))
     with np.errstate(divide="ignore", invalid="ignore"):
-        w_hi = (-qb + sq) / (2.0 * qa)
-        w_lo = (-qb - sq) / (2.0 * qa)
+        return hit, (-qb - sq) / (2.0 * qa), (-qb + sq) / (2.0 * qa)
+
+
+def _post_hides(bundle: RayBundle, post: Post, z_water, rows):
+    """True where the ray meets the post above the water it would otherwise see."""
+    hit, w_lo, w_hi = _circle_crossings(bundle.centre[0] - post.centre[0], bundle.centre[1] - post.centre[1],
+                                        bundle.sx[rows], bundle.sy[rows], post.radius)
     z_hi = bundle.centre[2] + w_hi
     z_lo = bundle.centre[2] + w_lo
     z_hit = np.minimum(z_hi, post.top)
@@ -254,16 +260,7 @@ def _post_shades(x, y, z, projector_centre, post: Post):
     dx = projector_centre[0] - x
     dy = projector_centre[1] - y
     dz = projector_centre[2] - z
-    ax = x - post.centre[0]
-    ay = y - post.centre[1]
-    qa = dx * dx + dy * dy
-    qb = 2.0 * (ax * dx + ay * dy)
-    qc = ax * ax + ay * ay - post.radius ** 2
-    disc = qb * qb - 4.0 * qa * qc
-    hit = disc > 0
-    sq = np.sqrt(np.where(hit, disc, 0.0))
-    s_lo = (-qb - sq) / (2.0 * qa)
-    s_hi = (-qb + sq) / (2.0 * qa)
+    hit, s_lo, s_hi = _circle_crossings(x - post.centre[0], y - post.centre[1], dx, dy, post.radius)
     s_enter = np.maximum(s_lo, 0.0)
     return hit & (s_hi > 0) & (s_enter < 1) & (z + s_enter * dz <= post.top)
 

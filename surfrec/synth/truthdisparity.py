@@ -35,7 +35,7 @@ def true_disparity(left: Camera, right: Camera, rectification: dict, surface, t:
     u = np.asarray(u, float)
     v = np.asarray(v, float)
     r1, p1 = np.asarray(rectification["R1"]), np.asarray(rectification["P1"])
-    r2, p2 = np.asarray(rectification["R2"]), np.asarray(rectification["P2"])
+    p2 = np.asarray(rectification["P2"])
     k1 = p1[:, :3]
     rays_rect = np.stack([(u - k1[0, 2]) / k1[0, 0], (v - k1[1, 2]) / k1[1, 1], np.ones_like(u)], -1)
     rays_cam = rays_rect @ r1          # R1^T applied to row vectors
