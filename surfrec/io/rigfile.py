@@ -169,7 +169,7 @@ def rig_from_dict(d, source: str = "rig") -> StereoRig:
             raise InputError(f"{source}: 'cameras.{side}.matrix' is not a camera matrix "
                              "([[fx, s, cx], [0, fy, cy], [0, 0, 1]] with fx, fy > 0)")
     rot = _array(d, "stereo.rotation", (3, 3), source)
-    if not np.allclose(rot @ rot.T, np.eye(3), atol=1e-6) or not math.isclose(np.linalg.det(rot), 1.0, abs_tol=1e-6):
+    if not _is_rotation(rot):
         raise InputError(f"{source}: 'stereo.rotation' is not a rotation matrix (orthonormal, determinant +1)")
     trans = _array(d, "stereo.translation", (3,), source)
     if np.linalg.norm(trans) <= 0:
@@ -179,7 +179,7 @@ def rig_from_dict(d, source: str = "rig") -> StereoRig:
         rect[key] = _array(d, f"rectification.{key}", shape, source)
     for key in ("R1", "R2"):
         r = rect[key]
-        if not np.allclose(r @ r.T, np.eye(3), atol=1e-6) or not math.isclose(np.linalg.det(r), 1.0, abs_tol=1e-6):
+        if not _is_rotation(r):
             raise InputError(f"{source}: 'rectification.{key}' is not a rotation matrix (orthonormal, determinant +1)")
     for key in ("P1", "P2"):
         p = rect[key]
@@ -202,6 +202,11 @@ def rig_from_dict(d, source: str = "rig") -> StereoRig:
     return StereoRig(image_size=(int(size[0]), int(size[1])), rotation=rot, translation=trans,
                      rectification=rect, residuals=residuals, board=d.get("board"), created=d.get("created"),
                      software=d.get("software"), extra={k: v for k, v in d.items() if k not in known}, **km)
+
+
+def _is_rotation(r) -> bool:
+    """Orthonormal with determinant +1 (to 1e-6)."""
+    return bool(np.allclose(r @ r.T, np.eye(3), atol=1e-6) and math.isclose(np.linalg.det(r), 1.0, abs_tol=1e-6))
 
 
 def _check_board(board, source):
