@@ -15,8 +15,6 @@ log = logging.getLogger("surfrec")
 
 # Frames read from disparity.h5 at a time: a few MB, so memory stays flat on any run length.
 _BLOCK_FRAMES = 8
-# A frame whose measured nodes cover less than this fraction of the footprint is flagged.
-_FEW_HEIGHTS = 0.5
 
 
 def _numbers(text, n, param, ctx, what):
@@ -92,10 +90,10 @@ def command(disparity_path, rig_path, datum_path, output, grid_step, extent, cir
     import numpy as np
 
     from surfrec.errors import InputError
-    from surfrec.geometry.resample import MAX_NODES, HeightResampler, grid_size, plan_grid
+    from surfrec.geometry.resample import MAX_NODES, grid_size
     from surfrec.io.datumfile import read_datum
     from surfrec.io.disparityfile import read_disparity
-    from surfrec.io.heightsfile import FLAG_FEW_HEIGHTS, HeightsWriter
+    from surfrec.io.heightsfile import HeightsWriter
     from surfrec.io.outputs import check_output
     from surfrec.io.polygons import read_polygons
     from surfrec.io.rigfile import file_sha256, read_rig
@@ -113,21 +111,23 @@ def command(disparity_path, rig_path, datum_path, output, grid_step, extent, cir
     for pf in polygon_files:
         polygons.extend(read_polygons(pf))
 
-    rect = rig.rectification
     if extent is not None and grid_step is not None:
         ny, nx = grid_size(extent, grid_step)
         if nx * ny > MAX_NODES:
             raise InputError(f"--grid-step {grid_step:g} over --extent {','.join(f'{v:g}' for v in extent)} gives "
                              f"{nx * ny:,} nodes per frame, above the limit of {MAX_NODES:,}; "
                              "choose a larger --grid-step or a smaller --extent")
+    from surfrec.geometry.session import heights_of_frame, prepare_heights
+
     try:
-        plan = plan_grid(meta["u"], meta["v"], rect["R1"], rect["P1"], datum, step=grid_step, extent=extent,
-                         circles=circles, polygons=polygons, still_correction=still_correction)
+        hsetup = prepare_heights(meta["u"], meta["v"], rig, datum, step=grid_step, extent=extent, circles=circles,
+                                 polygons=polygons, still_correction=still_correction)
     except ValueError as exc:
         msg = str(exc)
         if "nodes per frame" in msg:
             msg += "; choose a larger --grid-step" + (" or a smaller --extent" if extent else "")
         raise InputError(msg) from None
+    plan, resampler = hsetup.plan, hsetup.resampler
     fp = plan.footprint
     if extent is not None:
         inside = float(fp.mean())
@@ -138,8 +138,6 @@ def command(disparity_path, rig_path, datum_path, output, grid_step, extent, cir
         log.warning("warning: --grid-step %g mm is finer than half the spacing of the matches on the water "
                     "(%.2f mm): the extra nodes are interpolated, not measured", plan.step, plan.point_spacing_mm)
     ny, nx = fp.shape
-    resampler = HeightResampler(meta["u"], meta["v"], rect["Q"], rect["R1"], rect["P1"],
-                                datum.world_to_left_camera, plan.x, plan.y, mask=fp, still=plan.still)
     n = int(meta["time"].size)
     if n == 0:
         raise InputError(f"{disparity_path} holds no frames")
@@ -179,16 +177,13 @@ def command(disparity_path, rig_path, datum_path, output, grid_step, extent, cir
                 block = {"disparity": dfile["disparity"][b0:b1], "disparity_sigma": dfile["disparity_sigma"][b0:b1]}
                 for k in range(block["disparity"].shape[0]):
                     i = b0 + k
-                    h, s, st = resampler(block["disparity"][k], block["disparity_sigma"][k])
-                    totals.add(st)
-                    ok = np.isfinite(h)
-                    coverage[i] = ok[fp].mean()
-                    flags = int(meta["frame_flags"][i])
-                    if coverage[i] < _FEW_HEIGHTS:
-                        flags |= FLAG_FEW_HEIGHTS
-                    if ok.any():
-                        abs95.append(float(np.percentile(np.abs(h[ok]), 95)))
-                    writer.append(float(meta["time"][i]), h, s, flags)
+                    fh = heights_of_frame(hsetup, block["disparity"][k], block["disparity_sigma"][k],
+                                          int(meta["frame_flags"][i]))
+                    totals.add(fh.stats)
+                    coverage[i] = fh.coverage
+                    if np.isfinite(fh.abs_p95_mm):
+                        abs95.append(fh.abs_p95_mm)
+                    writer.append(float(meta["time"][i]), fh.height, fh.uncertainty, fh.flags)
                     progress(i + 1)
         wall = time.monotonic() - t0
         h95 = float(np.median(abs95)) if abs95 else float("nan")

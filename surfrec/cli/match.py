@@ -73,11 +73,7 @@ def command(rig_path, datum_path, left, right, output, fps, timestamps, window, 
     from surfrec.io.outputs import check_output
     from surfrec.io.rigfile import file_sha256, read_rig
     from surfrec.io.timestamps import read_timestamps
-    from surfrec.match.pipeline import (FLAG_BLANK, FLAG_FEW_VALID, MatchParams, RectifiedCache,
-                                        band_halfwidth_px, is_blank, match_frame, matching_grid,
-                                        reference_on_grid, time_window_indices)
-    from surfrec.match.rectification import FrameRectifier
-    from surfrec.match.speckle import default_window, speckle_size_px
+    from surfrec.match.session import match_frames, prepare_matching
     if (fps is None) == (timestamps is None):
         raise InputError("give exactly one of --fps or --timestamps")
     out = check_output(output, force=force)
@@ -98,64 +94,38 @@ def command(rig_path, datum_path, left, right, output, fps, timestamps, window, 
     stop = min(stop, n)
     frames = list(range(start, stop, step))
 
-    speckle = speckle_size_px(lf[frames[0]])
-    # The datum's grid by default, so the reference disparity needs no interpolation.
-    window = window or _int_attr(datum.attrs, "window_px") or default_window(speckle)
-    spacing = spacing or _int_attr(datum.attrs, "spacing_px") or 4
-    params = MatchParams(window=window, spacing=spacing, time_window=time_window, max_excursion_mm=max_excursion,
-                         rectify_method=rectify_method)
-    rectifier = FrameRectifier(rig, rectify_method)
-    gu, gv = matching_grid(rig.image_size, spacing, window)
-    centre = reference_on_grid(datum.u, datum.v, datum.disparity, gu, gv)
-    if not np.isfinite(centre).any():
-        raise InputError(f"{datum_path} holds no valid reference disparity on the matching grid")
-    c = float(rig.rectification["P1"][0, 2] - rig.rectification["P2"][0, 2])
-    band = band_halfwidth_px(centre, abs(datum.plane_offset), c, max_excursion)
-    params.band_px = band
-    measure = None
-    if mask_path:
-        measure = _mask_on_grid(mask_path, rig, rectifier, gu, gv, window)
-    dt_frame = float(np.median(np.diff(times))) if n > 1 else 1.0
+    mask_image = _read_mask(mask_path, rig) if mask_path else None
+    try:
+        setup = prepare_matching(rig, datum, lf[frames[0]], times, window=window, spacing=spacing,
+                                 time_window=time_window, max_excursion_mm=max_excursion,
+                                 rectify_method=rectify_method, mask_image=mask_image)
+    except ValueError as exc:
+        raise InputError(f"{datum_path} {exc}") from None
+    params, gu, gv = setup.params, setup.grid_u, setup.grid_v
     log.info("matching %d frame pairs: grid %dx%d (spacing %d px), window %d px (speckle %.1f px), band +-%d px, "
-             "time window %d", len(frames), len(gu), len(gv), spacing, window, speckle, band, time_window)
+             "time window %d", len(frames), len(gu), len(gv), params.spacing, params.window, setup.speckle_px,
+             setup.band, time_window)
 
     attrs = {f"param_{k}": v for k, v in params.to_dict().items() if v is not None}
     attrs.update({"rig_sha256": rig_hash, "datum_sha256": file_sha256(datum_path),
                   "history": " ".join(shlex.quote(a) for a in ["surfrec", *sys.argv[1:]]),
-                  "frames": f"{start}:{stop}:{step}", "speckle_px": float(speckle),
+                  "frames": f"{start}:{stop}:{step}", "speckle_px": float(setup.speckle_px),
                   "left_first": lf.names[0], "left_last": lf.names[-1],
                   "right_first": rf.names[0], "right_last": rf.names[-1],
                   "timing": "timestamps" if timestamps else f"fps={fps:g}"})
     writer = DisparityWriter(out, gu, gv, attrs, len(frames))
-    cache = RectifiedCache(rectifier, lf, rf, keep=time_window + step)
     from surfrec.cli.progress import Progress
 
     t0 = time.monotonic()
     totals = {}
     try:
         with Progress(len(frames), "matching") as progress:
-            for k, i in enumerate(frames):
-                idx = time_window_indices(i, n, time_window)
-                pairs = [cache.get(j) for j in idx]
-                lefts = np.stack([p[0] for p in pairs])
-                rights = np.stack([p[1] for p in pairs])
-                taus = (times[idx] - times[i]) / dt_frame
-                flags = 0
-                if is_blank(pairs[idx.index(i)][0]) or is_blank(pairs[idx.index(i)][1]):
-                    flags |= FLAG_BLANK
-                    nan = np.full((len(gv), len(gu)), np.nan, np.float32)
-                    res = {"disparity": nan, "disparity_sigma": nan, "score": nan, "reasons": {}}
-                else:
-                    coef = np.stack([cache.right_coefficients(j, params.spline_order) for j in idx])
-                    res = match_frame(lefts, rights, taus, gu, gv, centre, band, params, measure=measure,
-                                      right_coef=coef)
-                valid = np.isfinite(res["disparity"]).mean()
-                if valid < 0.5 and not flags:
-                    flags |= FLAG_FEW_VALID
-                for key, val in res["reasons"].items():
+            for k, res in enumerate(match_frames(setup, lf, rf, frames)):
+                for key, val in res.reasons.items():
                     totals[key] = totals.get(key, 0) + val
-                writer.append(time=float(times[i] - times[frames[0]]), frame_index=i, flags=flags,
-                              disparity=res["disparity"], disparity_sigma=res["disparity_sigma"], score=res["score"])
+                writer.append(time=float(times[res.index] - times[frames[0]]), frame_index=res.index,
+                              flags=res.flags, disparity=res.disparity, disparity_sigma=res.disparity_sigma,
+                              score=res.score)
                 progress(k + 1)
         wall = time.monotonic() - t0
         writer.close({"wall_seconds": wall, "seconds_per_frame": wall / len(frames), "rejected": totals})
@@ -166,24 +136,11 @@ def command(rig_path, datum_path, left, right, output, fps, timestamps, window, 
     click.echo(str(out))
 
 
-def _int_attr(attrs, key):
-    try:
-        value = int(attrs.get(key))
-    except (TypeError, ValueError):
-        return None
-    return value if value > 0 else None
-
-
-def _mask_on_grid(mask_path, rig, rectifier, gu, gv, window):
-    import numpy as np
-
+def _read_mask(mask_path, rig):
     from surfrec.errors import InputError
     from surfrec.io.images import open_frames
-    from surfrec.match.validity import window_fully_inside
 
     m = open_frames(mask_path, expected_size=rig.image_size, name="mask")
     if len(m) != 1:
         raise InputError(f"mask {mask_path}: expected one image, found {len(m)}")
-    rect = rectifier.mask(m.read_raw(0))
-    vv, uu = np.meshgrid(gv, gu, indexing="ij")
-    return window_fully_inside(rect, uu, vv, window)
+    return m.read_raw(0)
