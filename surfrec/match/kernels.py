@@ -4,8 +4,9 @@ Why by hand: the matcher evaluates a small correlation problem at tens of
 thousands of grid points per frame, each with its own search band and warp;
 no library offers ZNCC with per-point bands on rectified rows, nor
 inverse-compositional Gauss–Newton with a horizontal first-order shape
-function and a spatio-temporal term. The loops run in parallel over points
-(numba prange), one compiled function per task, cached on disk.
+function and a spatio-temporal term. The loops run in parallel (numba
+prange: grid rows for the search, points for the refinement), one compiled
+function per task, cached on disk.
 
 Conventions: images are stacks (T, H, W) of rectified frames in one time
 window; a point's window is rows v-hw..v+hw and columns u-hw..u+hw of the
@@ -55,25 +56,6 @@ def _bspline5_weights(f, w):
 
 
 @njit(cache=True, inline="always")
-def _sample_row(coef, t, row, x, order, w):
-    """Value of the row spline at column x (float); NaN outside the image."""
-    n = coef.shape[2]
-    i = int(np.floor(x))
-    f = x - i
-    if order == 3:
-        if i - 1 < 0 or i + 2 >= n:
-            return np.nan
-        _bspline3_weights(f, w)
-        return (w[0] * coef[t, row, i - 1] + w[1] * coef[t, row, i] + w[2] * coef[t, row, i + 1]
-                + w[3] * coef[t, row, i + 2])
-    if i - 2 < 0 or i + 3 >= n:
-        return np.nan
-    _bspline5_weights(f, w)
-    return (w[0] * coef[t, row, i - 2] + w[1] * coef[t, row, i - 1] + w[2] * coef[t, row, i]
-            + w[3] * coef[t, row, i + 1] + w[4] * coef[t, row, i + 2] + w[5] * coef[t, row, i + 3])
-
-
-@njit(cache=True, inline="always")
 def _centre_window(left, t, u, v, hw, out):
     """Write frame t's window about (u, v) minus its mean into out[t]; return its norm (0 if flat)."""
     side = 2 * hw + 1
@@ -91,75 +73,187 @@ def _centre_window(left, t, u, v, hw, out):
     return np.sqrt(ss) if ss > _EPS else 0.0
 
 
-@njit(parallel=True, cache=True)
-def zncc_search(left, right, us, vs, centre, halfwidth, hw, scores):
+# Fast-math flags without "nnan"/"ninf": NaN tests must keep working; reassociation lets the
+# compiler vectorise the window sums (results change only in the last bits).
+_FAST = {"reassoc", "contract", "arcp", "nsz"}
+
+
+@njit(cache=True, inline="always")
+def _spline3_at(coef, t, row, x):
+    # Cubic B-spline value at column x (caller checks 1 <= x < n - 2).
+    i = int(x)
+    f = x - i
+    g = 1.0 - f
+    f2 = f * f
+    f3 = f2 * f
+    return (g * g * g * coef[t, row, i - 1] + (3.0 * f3 - 6.0 * f2 + 4.0) * coef[t, row, i]
+            + (-3.0 * f3 + 3.0 * f2 + 3.0 * f + 1.0) * coef[t, row, i + 1] + f3 * coef[t, row, i + 2]) / 6.0
+
+
+@njit(cache=True, inline="always")
+def _spline5_at(coef, t, row, x):
+    # Quintic B-spline value at column x (caller checks 2 <= x < n - 3); pieces of beta5 as in
+    # _bspline5_weights.
+    i = int(x)
+    f = x - i
+    g = 1.0 - f
+    y = f + 1.0
+    y2 = y * y
+    w1 = 51.0 + 75.0 * y - 210.0 * y2 + 150.0 * y2 * y - 45.0 * y2 * y2 + 5.0 * y2 * y2 * y
+    y = 2.0 - f
+    y2 = y * y
+    w4 = 51.0 + 75.0 * y - 210.0 * y2 + 150.0 * y2 * y - 45.0 * y2 * y2 + 5.0 * y2 * y2 * y
+    f2 = f * f
+    g2 = g * g
+    w2 = 66.0 - 60.0 * f2 + 30.0 * f2 * f2 - 10.0 * f2 * f2 * f
+    w3 = 66.0 - 60.0 * g2 + 30.0 * g2 * g2 - 10.0 * g2 * g2 * g
+    return (g2 * g2 * g * coef[t, row, i - 2] + w1 * coef[t, row, i - 1] + w2 * coef[t, row, i]
+            + w3 * coef[t, row, i + 1] + w4 * coef[t, row, i + 2] + f2 * f2 * f * coef[t, row, i + 3]) / 120.0
+
+
+@njit(parallel=True, cache=True, fastmath=_FAST)
+def zncc_search(left, right, us, vs, centre, row_start, halfwidth, hw, scores):
     """ZNCC of each point's left window against right windows at integer disparities.
+
+    Points are taken a grid row at a time: for every disparity D a row needs,
+    the products left(x) right(x - D) are summed down the window's rows once
+    per column and then along the row by prefix sums, so each point's
+    cross-correlation costs O(1) instead of a window's worth of products —
+    neighbouring points' windows overlap by most of their area.
 
     Parameters
     ----------
     left, right : float32 (T, H, W) rectified stacks (T frames of one time window).
-    us, vs : int64 (N,) window centres in the left image, px.
+    us, vs : int64 (N,) window centres in the left image, px, sorted by vs.
     centre : int64 (N,) centre of each point's disparity band, px.
+    row_start : int64 (R + 1,) offsets of the runs of equal vs in the point arrays.
     halfwidth : int, band half-width, px: disparities centre-halfwidth..centre+halfwidth.
     hw : int, window half-size (window = 2 hw + 1 px square).
     scores : float64 (N, 2 halfwidth + 1) output; the mean over frames of the
         per-frame ZNCC; -2 where the right window leaves the image or a window is flat.
     """
     T, H, W = left.shape
-    n = us.shape[0]
     nk = 2 * halfwidth + 1
-    m = (2 * hw + 1) * (2 * hw + 1)
     side = 2 * hw + 1
-    for p in prange(n):
-        u = us[p]
-        v = vs[p]
-        for k in range(nk):
-            scores[p, k] = -2.0
-        if v - hw < 0 or v + hw >= H or u - hw < 0 or u + hw >= W:
+    m = side * side
+    nrows = row_start.shape[0] - 1
+    for r in prange(nrows):
+        a = row_start[r]
+        b = row_start[r + 1]
+        npt = b - a
+        for p in range(a, b):
+            for k in range(nk):
+                scores[p, k] = 0.0
+        bad = np.zeros((npt, nk), np.bool_)
+        v = vs[a]
+        if v - hw < 0 or v + hw >= H:
+            for p in range(a, b):
+                for k in range(nk):
+                    scores[p, k] = -2.0
             continue
-        # The template, zero-mean and unit-norm per frame, once per point: then each
-        # candidate needs only sum(g), sum(g^2) and sum(f~ g).
-        tpl = np.empty((T, side, side))
-        flat = False
+        colf = np.empty(W)
+        colff = np.empty(W)
+        colg = np.empty(W)
+        colgg = np.empty(W)
+        pf = np.zeros(W + 1)
+        pff = np.zeros(W + 1)
+        pg = np.zeros(W + 1)
+        pgg = np.zeros(W + 1)
+        cp = np.empty(W)
+        pp = np.zeros(W + 1)
+        sf = np.empty(npt)
+        vf = np.empty(npt)
         for t in range(T):
-            norm = _centre_window(left, t, u, v, hw, tpl)
-            if norm == 0.0:
-                flat = True
-                break
-            inv = 1.0 / norm
-            for dy in range(side):
-                for dx in range(side):
-                    tpl[t, dy, dx] *= inv
-        if flat:
-            continue
-        for k in range(nk):
-            d = centre[p] - halfwidth + k
-            ur = u - d
-            if ur - hw < 0 or ur + hw >= W:
-                continue
-            total = 0.0
-            ok = True
-            for t in range(T):
-                sg = 0.0
-                sgg = 0.0
-                sfg = 0.0
-                for dy in range(side):
-                    row = v - hw + dy
-                    for dx in range(side):
-                        g = right[t, row, ur - hw + dx]
-                        sg += g
-                        sgg += g * g
-                        sfg += tpl[t, dy, dx] * g
-                vg = sgg - sg * sg / m
-                if vg <= _EPS:
-                    ok = False
-                    break
-                total += sfg / np.sqrt(vg)
-            if ok:
-                scores[p, k] = total / T
+            for x in range(W):
+                colf[x] = 0.0
+                colff[x] = 0.0
+                colg[x] = 0.0
+                colgg[x] = 0.0
+            for y in range(v - hw, v + hw + 1):
+                for x in range(W):
+                    fl = np.float64(left[t, y, x])
+                    gr = np.float64(right[t, y, x])
+                    colf[x] += fl
+                    colff[x] += fl * fl
+                    colg[x] += gr
+                    colgg[x] += gr * gr
+            for x in range(W):
+                pf[x + 1] = pf[x] + colf[x]
+                pff[x + 1] = pff[x] + colff[x]
+                pg[x + 1] = pg[x] + colg[x]
+                pgg[x + 1] = pgg[x] + colgg[x]
+            dlo = 1 << 40
+            dhi = -(1 << 40)
+            for q in range(npt):
+                u = us[a + q]
+                if u - hw < 0 or u + hw >= W:
+                    for k in range(nk):
+                        bad[q, k] = True
+                    continue
+                s1 = pf[u + hw + 1] - pf[u - hw]
+                s2 = pff[u + hw + 1] - pff[u - hw]
+                var = s2 - s1 * s1 / m
+                if var <= _EPS:
+                    for k in range(nk):
+                        bad[q, k] = True
+                    continue
+                sf[q] = s1
+                vf[q] = var
+                c = centre[a + q]
+                dlo = min(dlo, c - halfwidth)
+                dhi = max(dhi, c + halfwidth)
+            for d in range(dlo, dhi + 1):
+                xlo = W
+                xhi = -1
+                for q in range(npt):
+                    k = d - (centre[a + q] - halfwidth)
+                    if k < 0 or k >= nk or bad[q, k]:
+                        continue
+                    u = us[a + q]
+                    xlo = min(xlo, u - hw)
+                    xhi = max(xhi, u + hw)
+                xlo = max(xlo, d)
+                xhi = min(xhi, W - 1 + d)
+                if xhi < xlo:
+                    for q in range(npt):
+                        k = d - (centre[a + q] - halfwidth)
+                        if 0 <= k < nk:
+                            bad[q, k] = True
+                    continue
+                for x in range(xlo, xhi + 1):
+                    cp[x] = 0.0
+                for y in range(v - hw, v + hw + 1):
+                    for x in range(xlo, xhi + 1):
+                        cp[x] += np.float64(left[t, y, x]) * np.float64(right[t, y, x - d])
+                pp[0] = 0.0
+                for x in range(xlo, xhi + 1):
+                    pp[x - xlo + 1] = pp[x - xlo] + cp[x]
+                for q in range(npt):
+                    k = d - (centre[a + q] - halfwidth)
+                    if k < 0 or k >= nk or bad[q, k]:
+                        continue
+                    u = us[a + q]
+                    ur = u - d
+                    if ur - hw < 0 or ur + hw >= W:
+                        bad[q, k] = True
+                        continue
+                    s1 = pg[ur + hw + 1] - pg[ur - hw]
+                    s2 = pgg[ur + hw + 1] - pgg[ur - hw]
+                    vg = s2 - s1 * s1 / m
+                    if vg <= _EPS:
+                        bad[q, k] = True
+                        continue
+                    sfg = pp[u + hw + 1 - xlo] - pp[u - hw - xlo]
+                    scores[a + q, k] += (sfg - sf[q] * s1 / m) / np.sqrt(vf[q] * vg)
+        for q in range(npt):
+            for k in range(nk):
+                if bad[q, k]:
+                    scores[a + q, k] = -2.0
+                else:
+                    scores[a + q, k] /= T
 
 
-@njit(parallel=True, cache=True)
+@njit(parallel=True, cache=True, fastmath=_FAST)
 def icgn_refine(left, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, temporal,
                 out_d, out_p, out_sigma, out_score, out_iter):
     """Inverse-compositional Gauss–Newton refinement of each point's disparity.
@@ -172,6 +266,11 @@ def icgn_refine(left, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, te
     d_t = -a3 (px per unit of tau). The criterion is the zero-normalised SSD
     summed over frames (Pan et al. 2013; Baker & Matthews 2004), which is
     insensitive to brightness changes per frame and equals 2 (1 - ZNCC).
+
+    The steepest-descent images are the template's row gradient times
+    (1, dx, dy, tau), so each iteration needs only six sums over the warped
+    window (g, g^2, gx g, gx g dx, gx g dy, f g); the terms that involve the
+    template alone are computed once per point.
 
     Parameters
     ----------
@@ -192,6 +291,8 @@ def icgn_refine(left, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, te
     npar = 4 if temporal else 3
     side = 2 * hw + 1
     m = side * side
+    lo = 1 if order == 3 else 2  # spline taps left of floor(x) ...
+    hi = 2 if order == 3 else 3  # ... and right of it
     for p in prange(n):
         u = us[p]
         v = vs[p]
@@ -203,10 +304,13 @@ def icgn_refine(left, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, te
             out_p[p, j] = np.nan
         if v - hw < 0 or v + hw >= H or u - hw - 2 < 0 or u + hw + 2 >= W:
             continue
-        w = np.empty(6)
-        # Template: zero-mean, unit-norm per frame, and its steepest-descent images.
+        # Template: zero-mean, unit-norm per frame; its row gradient; and the sums of the
+        # steepest-descent images (A) and of their products with the template (B).
         fn = np.empty((T, side, side))
-        sd = np.empty((T, side, side, 4))
+        gx = np.empty((T, side, side))
+        A = np.zeros((T, 3))
+        B = np.zeros((T, 3))
+        mom = np.zeros(6)  # sums of gx^2 times 1, dx, dy, dx^2, dx dy, dy^2
         hess = np.zeros((npar, npar))
         flat = False
         for t in range(T):
@@ -214,25 +318,46 @@ def icgn_refine(left, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, te
             if norm == 0.0:
                 flat = True
                 break
+            for j in range(6):
+                mom[j] = 0.0
             for dy in range(side):
                 row = v - hw + dy
+                ody = dy - hw
                 for dx in range(side):
                     col = u - hw + dx
-                    fn[t, dy, dx] /= norm
+                    odx = dx - hw
+                    f = fn[t, dy, dx] / norm
+                    fn[t, dy, dx] = f
                     # Fourth-order central difference: accurate gradients speed convergence;
                     # the fixed point does not depend on them to first order.
-                    gx = (-left[t, row, col + 2] + 8.0 * left[t, row, col + 1] - 8.0 * left[t, row, col - 1]
-                          + left[t, row, col - 2]) / (12.0 * norm)
-                    sd[t, dy, dx, 0] = gx
-                    sd[t, dy, dx, 1] = gx * (dx - hw)
-                    sd[t, dy, dx, 2] = gx * (dy - hw)
-                    sd[t, dy, dx, 3] = gx * taus[t]
-            for dy in range(side):
-                for dx in range(side):
-                    for i in range(npar):
-                        si = sd[t, dy, dx, i]
-                        for j in range(i, npar):
-                            hess[i, j] += si * sd[t, dy, dx, j]
+                    g = (-left[t, row, col + 2] + 8.0 * left[t, row, col + 1] - 8.0 * left[t, row, col - 1]
+                         + left[t, row, col - 2]) / (12.0 * norm)
+                    gx[t, dy, dx] = g
+                    A[t, 0] += g
+                    A[t, 1] += g * odx
+                    A[t, 2] += g * ody
+                    B[t, 0] += g * f
+                    B[t, 1] += g * odx * f
+                    B[t, 2] += g * ody * f
+                    g2 = g * g
+                    mom[0] += g2
+                    mom[1] += g2 * odx
+                    mom[2] += g2 * ody
+                    mom[3] += g2 * odx * odx
+                    mom[4] += g2 * odx * ody
+                    mom[5] += g2 * ody * ody
+            tau = taus[t]
+            hess[0, 0] += mom[0]
+            hess[0, 1] += mom[1]
+            hess[0, 2] += mom[2]
+            hess[1, 1] += mom[3]
+            hess[1, 2] += mom[4]
+            hess[2, 2] += mom[5]
+            if npar == 4:
+                hess[0, 3] += mom[0] * tau
+                hess[1, 3] += mom[1] * tau
+                hess[2, 3] += mom[2] * tau
+                hess[3, 3] += mom[0] * tau * tau
         if flat:
             continue
         for i in range(npar):
@@ -243,48 +368,63 @@ def icgn_refine(left, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, te
         a1 = 0.0
         a2 = 0.0
         a3 = 0.0
-        g = np.empty((side, side))
         converged = False
         bad = False
         it = 0
         ssd = 0.0
+        grad = np.zeros(4)
         for it in range(1, max_iter + 1):
-            grad = np.zeros(npar)
+            for i in range(4):
+                grad[i] = 0.0
             ssd = 0.0
+            step = 1.0 + a1
             for t in range(T):
-                s = 0.0
+                sg = 0.0
+                sgg = 0.0
+                s0 = 0.0
+                s1 = 0.0
+                s2 = 0.0
+                sfg = 0.0
                 for dy in range(side):
                     row = v - hw + dy
                     ody = dy - hw
-                    for dx in range(side):
-                        odx = dx - hw
-                        x = u + odx + a0 + a1 * odx + a2 * ody + a3 * taus[t]
-                        val = _sample_row(right_coef, t, row, x, order, w)
-                        if np.isnan(val):
-                            bad = True
-                            break
-                        g[dy, dx] = val
-                        s += val
-                    if bad:
+                    x0 = u - hw + a0 - a1 * hw + a2 * ody + a3 * taus[t]
+                    x1 = x0 + 2 * hw * step
+                    if min(x0, x1) < lo or np.floor(max(x0, x1)) + hi > W - 1 or not (x0 == x0 and x1 == x1):
+                        bad = True
                         break
+                    r0 = 0.0
+                    r1 = 0.0
+                    for dx in range(side):
+                        x = x0 + dx * step
+                        if order == 3:
+                            val = _spline3_at(right_coef, t, row, x)
+                        else:
+                            val = _spline5_at(right_coef, t, row, x)
+                        sg += val
+                        sgg += val * val
+                        q = gx[t, dy, dx] * val
+                        r0 += q
+                        r1 += q * (dx - hw)
+                        sfg += fn[t, dy, dx] * val
+                    s0 += r0
+                    s1 += r1
+                    s2 += ody * r0
                 if bad:
                     break
-                mean = s / m
-                ss = 0.0
-                for dy in range(side):
-                    for dx in range(side):
-                        g[dy, dx] -= mean
-                        ss += g[dy, dx] * g[dy, dx]
+                ss = sgg - sg * sg / m
                 if ss <= _EPS:
                     bad = True
                     break
                 norm = np.sqrt(ss)
-                for dy in range(side):
-                    for dx in range(side):
-                        r = fn[t, dy, dx] - g[dy, dx] / norm
-                        ssd += r * r
-                        for i in range(npar):
-                            grad[i] += sd[t, dy, dx, i] * r
+                mean = sg / m
+                e0 = B[t, 0] - (s0 - mean * A[t, 0]) / norm
+                grad[0] += e0
+                grad[1] += B[t, 1] - (s1 - mean * A[t, 1]) / norm
+                grad[2] += B[t, 2] - (s2 - mean * A[t, 2]) / norm
+                grad[3] += taus[t] * e0
+                # sum of r^2 with r = f - (g - mean) / norm, since sum f = 0 and sum f^2 = 1
+                ssd += 2.0 - 2.0 * sfg / norm
             if bad:
                 break
             # dp = -H^-1 grad is the template-side update; composing its inverse into
