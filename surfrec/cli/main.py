@@ -28,6 +28,7 @@ _SUBCOMMANDS = {
     "datum": ("surfrec.cli.datum", "Still-water datum from a few still frames: plane, datum frame, residual (datum.h5)."),
     "match": ("surfrec.cli.match", "Match the speckle between the views of every frame pair: disparity.h5."),
     "heights": ("surfrec.cli.heights", "Triangulate and resample the disparities onto a regular grid: heights.h5."),
+    "run": ("surfrec.cli.run", "A whole overnight run from RUN.toml: match + heights, parallel, resumable, crash-safe."),
     "inspect": ("surfrec.cli.inspect", "Summarise any file that surfrec writes."),
     "preview": ("surfrec.cli.preview", "Draw one frame of heights.h5 as a height map (PNG), with a point's time series."),
     "assess": ("surfrec.cli.assess", "Accuracy of heights.h5: against a synthetic session's truth, or its noise floor."),
