@@ -253,6 +253,35 @@ def zncc_search(left, right, us, vs, centre, row_start, halfwidth, hw, scores):
                     scores[a + q, k] /= T
 
 
+@njit(cache=True)
+def _invert_spd(a, n, out, work):
+    """Inverse of the symmetric positive definite n x n matrix a into out (Gauss–Jordan without
+    pivoting, which is stable for such matrices); False if a is not positive definite.
+
+    Written out because numpy.linalg.inv allocates and calls LAPACK, which costs more than the
+    whole inversion of a 3x3 or 4x4 matrix, once per grid point."""
+    for i in range(n):
+        for j in range(n):
+            work[i, j] = a[i, j]
+            out[i, j] = 1.0 if i == j else 0.0
+    for k in range(n):
+        piv = work[k, k]
+        if not piv > 0.0:
+            return False
+        inv = 1.0 / piv
+        for j in range(n):
+            work[k, j] *= inv
+            out[k, j] *= inv
+        for i in range(n):
+            if i != k:
+                f = work[i, k]
+                if f != 0.0:
+                    for j in range(n):
+                        work[i, j] -= f * work[k, j]
+                        out[i, j] -= f * out[k, j]
+    return True
+
+
 @njit(parallel=True, cache=True, fastmath=_FAST)
 def icgn_refine(left, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, temporal,
                 out_d, out_p, out_sigma, out_score, out_iter):
@@ -293,168 +322,179 @@ def icgn_refine(left, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, te
     m = side * side
     lo = 1 if order == 3 else 2  # spline taps left of floor(x) ...
     hi = 2 if order == 3 else 3  # ... and right of it
-    for p in prange(n):
-        u = us[p]
-        v = vs[p]
-        out_d[p] = np.nan
-        out_sigma[p] = np.nan
-        out_score[p] = np.nan
-        out_iter[p] = -1
-        for j in range(4):
-            out_p[p, j] = np.nan
-        if v - hw < 0 or v + hw >= H or u - hw - 2 < 0 or u + hw + 2 >= W:
-            continue
-        # Template: zero-mean, unit-norm per frame; its row gradient; and the sums of the
-        # steepest-descent images (A) and of their products with the template (B).
+    # Points in chunks, with scratch arrays allocated once per chunk rather than per point.
+    chunk = 64
+    for c in prange((n + chunk - 1) // chunk):
         fn = np.empty((T, side, side))
         gx = np.empty((T, side, side))
-        A = np.zeros((T, 3))
-        B = np.zeros((T, 3))
-        mom = np.zeros(6)  # sums of gx^2 times 1, dx, dy, dx^2, dx dy, dy^2
-        hess = np.zeros((npar, npar))
-        flat = False
-        for t in range(T):
-            norm = _centre_window(left, t, u, v, hw, fn)
-            if norm == 0.0:
-                flat = True
-                break
-            for j in range(6):
-                mom[j] = 0.0
-            for dy in range(side):
-                row = v - hw + dy
-                ody = dy - hw
-                for dx in range(side):
-                    col = u - hw + dx
-                    odx = dx - hw
-                    f = fn[t, dy, dx] / norm
-                    fn[t, dy, dx] = f
-                    # Fourth-order central difference: accurate gradients speed convergence;
-                    # the fixed point does not depend on them to first order.
-                    g = (-left[t, row, col + 2] + 8.0 * left[t, row, col + 1] - 8.0 * left[t, row, col - 1]
-                         + left[t, row, col - 2]) / (12.0 * norm)
-                    gx[t, dy, dx] = g
-                    A[t, 0] += g
-                    A[t, 1] += g * odx
-                    A[t, 2] += g * ody
-                    B[t, 0] += g * f
-                    B[t, 1] += g * odx * f
-                    B[t, 2] += g * ody * f
-                    g2 = g * g
-                    mom[0] += g2
-                    mom[1] += g2 * odx
-                    mom[2] += g2 * ody
-                    mom[3] += g2 * odx * odx
-                    mom[4] += g2 * odx * ody
-                    mom[5] += g2 * ody * ody
-            tau = taus[t]
-            hess[0, 0] += mom[0]
-            hess[0, 1] += mom[1]
-            hess[0, 2] += mom[2]
-            hess[1, 1] += mom[3]
-            hess[1, 2] += mom[4]
-            hess[2, 2] += mom[5]
-            if npar == 4:
-                hess[0, 3] += mom[0] * tau
-                hess[1, 3] += mom[1] * tau
-                hess[2, 3] += mom[2] * tau
-                hess[3, 3] += mom[0] * tau * tau
-        if flat:
-            continue
-        for i in range(npar):
-            for j in range(i):
-                hess[i, j] = hess[j, i]
-        hinv = np.linalg.inv(hess)
-        a0 = -d0[p]
-        a1 = 0.0
-        a2 = 0.0
-        a3 = 0.0
-        converged = False
-        bad = False
-        it = 0
-        ssd = 0.0
+        A = np.empty((T, 3))  # sums of the steepest-descent images (over the window, per frame) ...
+        B = np.empty((T, 3))  # ... and of their products with the template
+        mom = np.empty(6)  # sums of gx^2 times 1, dx, dy, dx^2, dx dy, dy^2
+        hess = np.empty((npar, npar))
+        hinv = np.empty((npar, npar))
+        work = np.empty((npar, npar))
         grad = np.zeros(4)
-        for it in range(1, max_iter + 1):
-            for i in range(4):
-                grad[i] = 0.0
-            ssd = 0.0
-            step = 1.0 + a1
+        dp = np.zeros(4)
+        for p in range(c * chunk, min(n, (c + 1) * chunk)):
+            u = us[p]
+            v = vs[p]
+            out_d[p] = np.nan
+            out_sigma[p] = np.nan
+            out_score[p] = np.nan
+            out_iter[p] = -1
+            for j in range(4):
+                out_p[p, j] = np.nan
+            if v - hw < 0 or v + hw >= H or u - hw - 2 < 0 or u + hw + 2 >= W:
+                continue
+            # Template: zero-mean, unit-norm per frame; its row gradient; and the sums of the
+            # steepest-descent images (A) and of their products with the template (B).
+            A[:, :] = 0.0
+            B[:, :] = 0.0
+            hess[:, :] = 0.0
+            flat = False
             for t in range(T):
-                sg = 0.0
-                sgg = 0.0
-                s0 = 0.0
-                s1 = 0.0
-                s2 = 0.0
-                sfg = 0.0
+                norm = _centre_window(left, t, u, v, hw, fn)
+                if norm == 0.0:
+                    flat = True
+                    break
+                for j in range(6):
+                    mom[j] = 0.0
                 for dy in range(side):
                     row = v - hw + dy
                     ody = dy - hw
-                    x0 = u - hw + a0 - a1 * hw + a2 * ody + a3 * taus[t]
-                    x1 = x0 + 2 * hw * step
-                    if min(x0, x1) < lo or np.floor(max(x0, x1)) + hi > W - 1 or not (x0 == x0 and x1 == x1):
+                    for dx in range(side):
+                        col = u - hw + dx
+                        odx = dx - hw
+                        f = fn[t, dy, dx] / norm
+                        fn[t, dy, dx] = f
+                        # Fourth-order central difference: accurate gradients speed convergence;
+                        # the fixed point does not depend on them to first order.
+                        g = (-left[t, row, col + 2] + 8.0 * left[t, row, col + 1] - 8.0 * left[t, row, col - 1]
+                             + left[t, row, col - 2]) / (12.0 * norm)
+                        gx[t, dy, dx] = g
+                        A[t, 0] += g
+                        A[t, 1] += g * odx
+                        A[t, 2] += g * ody
+                        B[t, 0] += g * f
+                        B[t, 1] += g * odx * f
+                        B[t, 2] += g * ody * f
+                        g2 = g * g
+                        mom[0] += g2
+                        mom[1] += g2 * odx
+                        mom[2] += g2 * ody
+                        mom[3] += g2 * odx * odx
+                        mom[4] += g2 * odx * ody
+                        mom[5] += g2 * ody * ody
+                tau = taus[t]
+                hess[0, 0] += mom[0]
+                hess[0, 1] += mom[1]
+                hess[0, 2] += mom[2]
+                hess[1, 1] += mom[3]
+                hess[1, 2] += mom[4]
+                hess[2, 2] += mom[5]
+                if npar == 4:
+                    hess[0, 3] += mom[0] * tau
+                    hess[1, 3] += mom[1] * tau
+                    hess[2, 3] += mom[2] * tau
+                    hess[3, 3] += mom[0] * tau * tau
+            if flat:
+                continue
+            for i in range(npar):
+                for j in range(i):
+                    hess[i, j] = hess[j, i]
+            if not _invert_spd(hess, npar, hinv, work):
+                continue
+            a0 = -d0[p]
+            a1 = 0.0
+            a2 = 0.0
+            a3 = 0.0
+            converged = False
+            bad = False
+            it = 0
+            ssd = 0.0
+            for it in range(1, max_iter + 1):
+                for i in range(4):
+                    grad[i] = 0.0
+                ssd = 0.0
+                step = 1.0 + a1
+                for t in range(T):
+                    sg = 0.0
+                    sgg = 0.0
+                    s0 = 0.0
+                    s1 = 0.0
+                    s2 = 0.0
+                    sfg = 0.0
+                    for dy in range(side):
+                        row = v - hw + dy
+                        ody = dy - hw
+                        x0 = u - hw + a0 - a1 * hw + a2 * ody + a3 * taus[t]
+                        x1 = x0 + 2 * hw * step
+                        if min(x0, x1) < lo or np.floor(max(x0, x1)) + hi > W - 1 or not (x0 == x0 and x1 == x1):
+                            bad = True
+                            break
+                        r0 = 0.0
+                        r1 = 0.0
+                        for dx in range(side):
+                            x = x0 + dx * step
+                            if order == 3:
+                                val = _spline3_at(right_coef, t, row, x)
+                            else:
+                                val = _spline5_at(right_coef, t, row, x)
+                            sg += val
+                            sgg += val * val
+                            q = gx[t, dy, dx] * val
+                            r0 += q
+                            r1 += q * (dx - hw)
+                            sfg += fn[t, dy, dx] * val
+                        s0 += r0
+                        s1 += r1
+                        s2 += ody * r0
+                    if bad:
+                        break
+                    ss = sgg - sg * sg / m
+                    if ss <= _EPS:
                         bad = True
                         break
-                    r0 = 0.0
-                    r1 = 0.0
-                    for dx in range(side):
-                        x = x0 + dx * step
-                        if order == 3:
-                            val = _spline3_at(right_coef, t, row, x)
-                        else:
-                            val = _spline5_at(right_coef, t, row, x)
-                        sg += val
-                        sgg += val * val
-                        q = gx[t, dy, dx] * val
-                        r0 += q
-                        r1 += q * (dx - hw)
-                        sfg += fn[t, dy, dx] * val
-                    s0 += r0
-                    s1 += r1
-                    s2 += ody * r0
+                    norm = np.sqrt(ss)
+                    mean = sg / m
+                    e0 = B[t, 0] - (s0 - mean * A[t, 0]) / norm
+                    grad[0] += e0
+                    grad[1] += B[t, 1] - (s1 - mean * A[t, 1]) / norm
+                    grad[2] += B[t, 2] - (s2 - mean * A[t, 2]) / norm
+                    grad[3] += taus[t] * e0
+                    # sum of r^2 with r = f - (g - mean) / norm, since sum f = 0 and sum f^2 = 1
+                    ssd += 2.0 - 2.0 * sfg / norm
                 if bad:
                     break
-                ss = sgg - sg * sg / m
-                if ss <= _EPS:
-                    bad = True
+                # dp = -H^-1 grad is the template-side update; composing its inverse into
+                # the warp gives a_new = a - s dp / (1 + dp1) for the additive terms.
+                for i in range(4):
+                    dp[i] = 0.0
+                for i in range(npar):
+                    acc = 0.0
+                    for j in range(npar):
+                        acc += hinv[i, j] * grad[j]
+                    dp[i] = -acc
+                s_old = 1.0 + a1
+                s_d = 1.0 + dp[1]
+                a0 = a0 - s_old * dp[0] / s_d
+                a1 = s_old / s_d - 1.0
+                a2 = a2 - s_old * dp[2] / s_d
+                a3 = a3 - s_old * dp[3] / s_d
+                if abs(dp[0]) < tol and abs(dp[1]) * hw < tol and abs(dp[2]) * hw < tol and \
+                        abs(dp[3]) < tol:
+                    converged = True
                     break
-                norm = np.sqrt(ss)
-                mean = sg / m
-                e0 = B[t, 0] - (s0 - mean * A[t, 0]) / norm
-                grad[0] += e0
-                grad[1] += B[t, 1] - (s1 - mean * A[t, 1]) / norm
-                grad[2] += B[t, 2] - (s2 - mean * A[t, 2]) / norm
-                grad[3] += taus[t] * e0
-                # sum of r^2 with r = f - (g - mean) / norm, since sum f = 0 and sum f^2 = 1
-                ssd += 2.0 - 2.0 * sfg / norm
-            if bad:
-                break
-            # dp = -H^-1 grad is the template-side update; composing its inverse into
-            # the warp gives a_new = a - s dp / (1 + dp1) for the additive terms.
-            dp = np.zeros(4)
-            for i in range(npar):
-                acc = 0.0
-                for j in range(npar):
-                    acc += hinv[i, j] * grad[j]
-                dp[i] = -acc
-            s_old = 1.0 + a1
-            s_d = 1.0 + dp[1]
-            a0 = a0 - s_old * dp[0] / s_d
-            a1 = s_old / s_d - 1.0
-            a2 = a2 - s_old * dp[2] / s_d
-            a3 = a3 - s_old * dp[3] / s_d
-            if abs(dp[0]) < tol and abs(dp[1]) * hw < tol and abs(dp[2]) * hw < tol and \
-                    abs(dp[3]) < tol:
-                converged = True
-                break
-        if bad or not converged:
-            continue
-        out_d[p] = -a0
-        out_p[p, 0] = -a0
-        out_p[p, 1] = -a1
-        out_p[p, 2] = -a2
-        out_p[p, 3] = -a3 if temporal else 0.0
-        out_score[p] = 1.0 - ssd / (2.0 * T)
-        # Residual variance per pixel in normalised units (mean and scale per frame, and
-        # the shape parameters, are fitted), times the inverse normal matrix.
-        dof = T * (m - 2) - npar
-        out_sigma[p] = np.sqrt(max(ssd, 0.0) / dof * hinv[0, 0])
-        out_iter[p] = it
+            if bad or not converged:
+                continue
+            out_d[p] = -a0
+            out_p[p, 0] = -a0
+            out_p[p, 1] = -a1
+            out_p[p, 2] = -a2
+            out_p[p, 3] = -a3 if temporal else 0.0
+            out_score[p] = 1.0 - ssd / (2.0 * T)
+            # Residual variance per pixel in normalised units (mean and scale per frame, and
+            # the shape parameters, are fitted), times the inverse normal matrix.
+            dof = T * (m - 2) - npar
+            out_sigma[p] = np.sqrt(max(ssd, 0.0) / dof * hinv[0, 0])
+            out_iter[p] = it

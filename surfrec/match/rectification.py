@@ -66,7 +66,7 @@ class FrameRectifier:
         if self.method in _CV_FLAGS:
             return cv2.remap(img, mx, my, _CV_FLAGS[self.method], borderMode=cv2.BORDER_REFLECT)
         order = 3 if self.method == "bspline3" else 5
-        coef = ndimage.spline_filter(img.astype(np.float64), order=order, mode="mirror")
+        coef = _padded_coefficients(img, order)
         out = np.empty(mx.shape, np.float32)
         _remap_bspline(coef, mx, my, order, out)
         return out
@@ -84,29 +84,37 @@ class FrameRectifier:
         return cv2.remap(m, mx, my, cv2.INTER_NEAREST, borderMode=cv2.BORDER_CONSTANT, borderValue=0) != 0
 
 
-@njit(cache=True, inline="always")
-def _mirror(i, n):
-    # Mirror boundary (no repeated edge sample), as scipy's spline prefilter with mode "mirror" assumes.
-    if i < 0:
-        i = -i
-    elif i >= n:
-        i = 2 * n - 2 - i
-    return min(max(i, 0), n - 1)
+_PAD = 4  # mirrored border added to the coefficients so that the sampling loop needs no boundary tests
 
 
-@njit(parallel=True, cache=True)
+def _padded_coefficients(img, order):
+    """B-spline coefficients (mirror boundary, as scipy's prefilter assumes) with a mirrored border."""
+    coef = ndimage.spline_filter(img.astype(np.float64), order=order, mode="mirror")
+    # numpy's "reflect" repeats no edge sample: the same symmetry as scipy's "mirror".
+    return np.pad(coef, _PAD, mode="reflect")
+
+
+@njit(parallel=True, cache=True, fastmath={"reassoc", "contract", "arcp", "nsz"})
 def _remap_bspline(coef, mx, my, order, out):
-    """Sample B-spline coefficients at float positions (mirror boundary)."""
-    H, W = coef.shape
+    """Sample padded B-spline coefficients (see _padded_coefficients) at float positions."""
+    Hp, Wp = coef.shape
     rows, cols = mx.shape
     half = 1 if order == 3 else 2
     taps = order + 1
+    # Positions beyond the mirrored border are clamped to it (far outside the image: any value will do,
+    # such pixels are never matched).
+    lo = half - _PAD
+    hi_x = Wp - _PAD - taps + half - 1
+    hi_y = Hp - _PAD - taps + half - 1
     for r in prange(rows):
         wx = np.empty(6)
         wy = np.empty(6)
         for c in range(cols):
-            x = mx[r, c]
-            y = my[r, c]
+            x = min(max(mx[r, c], lo), hi_x)
+            y = min(max(my[r, c], lo), hi_y)
+            if not (x == x and y == y):
+                out[r, c] = np.nan
+                continue
             ix = int(np.floor(x))
             iy = int(np.floor(y))
             if order == 3:
@@ -115,11 +123,12 @@ def _remap_bspline(coef, mx, my, order, out):
             else:
                 _w5(x - ix, wx)
                 _w5(y - iy, wy)
+            x0 = ix - half + _PAD
+            y0 = iy - half + _PAD
             acc = 0.0
             for j in range(taps):
-                yy = _mirror(iy - half + j, H)
                 racc = 0.0
                 for i in range(taps):
-                    racc += wx[i] * coef[yy, _mirror(ix - half + i, W)]
+                    racc += wx[i] * coef[y0 + j, x0 + i]
                 acc += wy[j] * racc
             out[r, c] = acc

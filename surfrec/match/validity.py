@@ -29,15 +29,25 @@ def normalised_median_test(field, *, threshold: float = 2.0, eps: float = 0.1) -
     nv, nu = f.shape
     neigh = np.stack([pad[1 + dy:1 + dy + nv, 1 + dx:1 + dx + nu]
                       for dy in (-1, 0, 1) for dx in (-1, 0, 1) if (dy, dx) != (0, 0)])
-    with np.errstate(all="ignore"):
-        import warnings
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN neighbourhoods are expected at edges
-            med = np.nanmedian(neigh, axis=0)
-            resid = np.nanmedian(np.abs(neigh - med), axis=0)
+    med = _nanmedian0(neigh)
+    resid = _nanmedian0(np.abs(neigh - med))
     r = np.abs(f - med) / (resid + eps)
     enough = np.sum(np.isfinite(neigh), axis=0) >= 3
     return np.isfinite(f) & enough & (r > threshold)
+
+
+def _nanmedian0(stack):
+    """Median over axis 0 ignoring NaN (NaN where all are NaN).
+
+    Same values as numpy.nanmedian(stack, axis=0), an order of magnitude faster for
+    a short axis 0: one sort with NaN sent to the end, then the middle of the finite part.
+    """
+    s = np.sort(np.where(np.isnan(stack), np.inf, stack), axis=0)
+    count = np.sum(np.isfinite(stack), axis=0)
+    lo = np.take_along_axis(s, (np.maximum(count - 1, 0) // 2)[None], axis=0)[0]
+    hi = np.take_along_axis(s, np.minimum(count // 2, s.shape[0] - 1)[None], axis=0)[0]
+    with np.errstate(invalid="ignore"):
+        return np.where(count > 0, 0.5 * (lo + hi), np.nan)
 
 
 def window_fully_inside(mask_rect, us, vs, window: int) -> np.ndarray:
