@@ -6,8 +6,8 @@ Two families of resampling:
   but it rounds every sample position to 1/32 px (INTER_BITS = 5), and since
   the map's fractional part drifts slowly along a row, the rounding error
   is correlated over many pixels — a systematic shift of up to 1/64 px.
-- Exact-position B-splines of order 3 or 5 (the image prefiltered once with
-  scipy.ndimage.spline_filter, then sampled in a compiled loop): no
+- Exact-position B-splines of order 3 or 5 (the image prefiltered once,
+  surfrec.match.prefilter, then sampled in a compiled loop): no
   position rounding, and interpolation error far below the matcher's
   noise. Written by hand because scipy's map_coordinates is single-threaded
   and several times slower on whole frames.
@@ -21,11 +21,11 @@ from __future__ import annotations
 import cv2
 import numpy as np
 from numba import njit, prange
-from scipy import ndimage
 
 from surfrec.calib.rectify import rectification_maps
 from surfrec.match.kernels import _bspline3_weights as _w3
 from surfrec.match.kernels import _bspline5_weights as _w5
+from surfrec.match.prefilter import spline_coefficients
 
 METHODS = ("linear", "cubic", "lanczos4", "bspline3", "bspline5")
 DEFAULT_METHOD = "bspline3"
@@ -89,7 +89,7 @@ _PAD = 4  # mirrored border added to the coefficients so that the sampling loop 
 
 def _padded_coefficients(img, order):
     """B-spline coefficients (mirror boundary, as scipy's prefilter assumes) with a mirrored border."""
-    coef = ndimage.spline_filter(img.astype(np.float64), order=order, mode="mirror")
+    coef = spline_coefficients(img, order)
     # numpy's "reflect" repeats no edge sample: the same symmetry as scipy's "mirror".
     return np.pad(coef, _PAD, mode="reflect")
 
