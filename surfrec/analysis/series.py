@@ -11,7 +11,7 @@ import numpy as np
 
 from surfrec.errors import InputError
 
-__all__ = ["point_weights", "sample_point"]
+__all__ = ["longest_finite_run", "point_weights", "regular_stretch", "sample_point"]
 
 
 def point_weights(x, y, px: float, py: float, *, method: str = "bilinear"):
@@ -85,3 +85,71 @@ def sample_point(height, uncertainty, rows, cols, weights):
         sigma = s @ w
         sigma[~np.isfinite(value)] = np.nan
     return value, sigma
+
+
+def regular_stretch(time, *, rtol: float = 0.01):
+    """The longest run of evenly sampled frames of a time axis.
+
+    Dropped frames leave gaps in ``time``; spectra and harmonic fits assume
+    an even sampling, so they use the longest stretch without a gap.
+
+    Parameters
+    ----------
+    time : (T,) array_like
+        Frame times, s, increasing.
+    rtol : float, optional
+        A step counts as regular when it is within ``rtol`` of the median
+        step (1% by default: timestamp jitter of a frame clock is far below
+        that, a dropped frame doubles the step).
+
+    Returns
+    -------
+    start, stop : int
+        Frames ``start:stop`` (stop exclusive) form the stretch.
+    dt : float
+        Mean step over the stretch, s (NaN for a single frame).
+    gaps : int
+        Number of irregular steps in the whole axis (0: evenly sampled).
+
+    Raises
+    ------
+    InputError
+        If the times are not finite and strictly increasing.
+    """
+    t = np.asarray(time, np.float64).reshape(-1)
+    if t.size == 0:
+        raise InputError("the time axis is empty")
+    if not np.all(np.isfinite(t)) or (t.size > 1 and not np.all(np.diff(t) > 0)):
+        raise InputError("the time axis must be finite and strictly increasing (s)")
+    if t.size == 1:
+        return 0, 1, float("nan"), 0
+    d = np.diff(t)
+    step = float(np.median(d))
+    good = np.abs(d - step) <= rtol * step
+    run_start, run_len = longest_finite_run(np.where(good, 1.0, np.nan))
+    if run_len == 0:  # every step irregular: any two neighbouring frames are a "stretch"
+        return 0, 2, float(d[0]), int(d.size)
+    start, stop = run_start, run_start + run_len + 1
+    return start, stop, float((t[stop - 1] - t[start]) / (stop - 1 - start)), int(np.count_nonzero(~good))
+
+
+def longest_finite_run(values):
+    """Start and length of the longest run of consecutive finite values.
+
+    Parameters
+    ----------
+    values : (N,) array_like
+
+    Returns
+    -------
+    start, length : int (length 0 when nothing is finite; then start is 0).
+    """
+    ok = np.isfinite(np.asarray(values, np.float64).reshape(-1))
+    if not ok.any():
+        return 0, 0
+    # Run boundaries from the changes of the padded indicator.
+    edges = np.diff(np.concatenate([[0], ok.astype(np.int8), [0]]))
+    starts = np.nonzero(edges == 1)[0]
+    stops = np.nonzero(edges == -1)[0]
+    i = int(np.argmax(stops - starts))
+    return int(starts[i]), int(stops[i] - starts[i])

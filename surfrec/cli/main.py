@@ -32,6 +32,8 @@ _SUBCOMMANDS = {
     "inspect": ("surfrec.cli.inspect", "Summarise any file that surfrec writes."),
     "preview": ("surfrec.cli.preview", "Draw one frame of heights.h5 as a height map (PNG), with a point's time series."),
     "assess": ("surfrec.cli.assess", "Accuracy of heights.h5: against a synthetic session's truth, or its noise floor."),
+    "spectrum": ("surfrec.cli.spectrum", "Frequency and frequency-wavenumber spectra of heights.h5, with a dispersion check."),
+    "modes": ("surfrec.cli.modes", "Incoming/outgoing cylindrical waves per angular order about a centre: R_m with errors."),
 }
 
 log = logging.getLogger("surfrec")
