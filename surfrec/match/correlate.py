@@ -124,7 +124,9 @@ def refine(left, right_coef, us, vs, d0, window: int, *, order: int = 5, taus=No
     out_iter = np.empty(n, np.int64)
     d0 = np.asarray(d0, dtype=np.float64)
     start = np.where(np.isfinite(d0), d0, 0.0)
-    kernels.icgn_refine(left, right_coef, taus, np.ascontiguousarray(us, dtype=np.int64),
+    left_gx = np.empty(left.shape)
+    kernels.row_gradient(left, left_gx)
+    kernels.icgn_refine(left, left_gx, right_coef, taus, np.ascontiguousarray(us, dtype=np.int64),
                         np.ascontiguousarray(vs, dtype=np.int64), start, int(window) // 2, int(order),
                         int(max_iter), float(tol), bool(temporal and T > 1),
                         out_d, out_p, out_sigma, out_score, out_iter)

@@ -55,24 +55,6 @@ def _bspline5_weights(f, w):
     w[3] = (66.0 - 60.0 * x2 + 30.0 * x2 * x2 - 10.0 * x2 * x2 * g) / 120.0
 
 
-@njit(cache=True, inline="always")
-def _centre_window(left, t, u, v, hw, out):
-    """Write frame t's window about (u, v) minus its mean into out[t]; return its norm (0 if flat)."""
-    side = 2 * hw + 1
-    s = 0.0
-    for dy in range(side):
-        for dx in range(side):
-            s += left[t, v - hw + dy, u - hw + dx]
-    mean = s / (side * side)
-    ss = 0.0
-    for dy in range(side):
-        for dx in range(side):
-            val = left[t, v - hw + dy, u - hw + dx] - mean
-            out[t, dy, dx] = val
-            ss += val * val
-    return np.sqrt(ss) if ss > _EPS else 0.0
-
-
 # Fast-math flags without "nnan"/"ninf": NaN tests must keep working; reassociation lets the
 # compiler vectorise the window sums (results change only in the last bits).
 _FAST = {"reassoc", "contract", "arcp", "nsz"}
@@ -116,10 +98,12 @@ def zncc_search(left, right, us, vs, centre, row_start, halfwidth, hw, scores):
     """ZNCC of each point's left window against right windows at integer disparities.
 
     Points are taken a grid row at a time: for every disparity D a row needs,
-    the products left(x) right(x - D) are summed down the window's rows once
-    per column and then along the row by prefix sums, so each point's
-    cross-correlation costs O(1) instead of a window's worth of products —
-    neighbouring points' windows overlap by most of their area.
+    the products left(x) right(x - D) summed down the window's rows are kept
+    per column and summed along the row by prefix sums, so each point's
+    cross-correlation costs O(1) instead of a window's worth of products
+    (neighbouring points' windows overlap by most of their area). Rows are
+    processed in blocks, and within a block the column sums slide down from
+    one grid row to the next (rows entering added, rows leaving subtracted).
 
     Parameters
     ----------
@@ -137,120 +121,146 @@ def zncc_search(left, right, us, vs, centre, row_start, halfwidth, hw, scores):
     side = 2 * hw + 1
     m = side * side
     nrows = row_start.shape[0] - 1
-    for r in prange(nrows):
-        a = row_start[r]
-        b = row_start[r + 1]
-        npt = b - a
-        for p in range(a, b):
-            for k in range(nk):
-                scores[p, k] = 0.0
-        bad = np.zeros((npt, nk), np.bool_)
-        v = vs[a]
-        if v - hw < 0 or v + hw >= H:
+    block = 8
+    for bk in prange((nrows + block - 1) // block):
+        r0 = bk * block
+        r1 = min(nrows, r0 + block)
+        # The block's disparity range (points inside the image only).
+        dlo = 1 << 40
+        dhi = -(1 << 40)
+        for p in range(row_start[r0], row_start[r1]):
+            dlo = min(dlo, centre[p] - halfwidth)
+            dhi = max(dhi, centre[p] + halfwidth)
+        nd = dhi - dlo + 1
+        if nd <= 0:
+            continue
+        cols = np.zeros((T, 4, W))  # column sums of f, f^2, g, g^2 over the window's rows
+        cp = np.zeros((T, nd, W))  # column sums of f(x) g(x - D)
+        pre = np.empty((4, W + 1))
+        pp = np.empty(W + 1)
+        top = -1  # first image row of the current column sums; -1: none yet
+        for r in range(r0, r1):
+            a = row_start[r]
+            b = row_start[r + 1]
+            npt = b - a
+            v = vs[a]
             for p in range(a, b):
                 for k in range(nk):
-                    scores[p, k] = -2.0
-            continue
-        colf = np.empty(W)
-        colff = np.empty(W)
-        colg = np.empty(W)
-        colgg = np.empty(W)
-        pf = np.zeros(W + 1)
-        pff = np.zeros(W + 1)
-        pg = np.zeros(W + 1)
-        pgg = np.zeros(W + 1)
-        cp = np.empty(W)
-        pp = np.zeros(W + 1)
-        sf = np.empty(npt)
-        vf = np.empty(npt)
-        for t in range(T):
-            for x in range(W):
-                colf[x] = 0.0
-                colff[x] = 0.0
-                colg[x] = 0.0
-                colgg[x] = 0.0
-            for y in range(v - hw, v + hw + 1):
-                for x in range(W):
-                    fl = np.float64(left[t, y, x])
-                    gr = np.float64(right[t, y, x])
-                    colf[x] += fl
-                    colff[x] += fl * fl
-                    colg[x] += gr
-                    colgg[x] += gr * gr
-            for x in range(W):
-                pf[x + 1] = pf[x] + colf[x]
-                pff[x + 1] = pff[x] + colff[x]
-                pg[x + 1] = pg[x] + colg[x]
-                pgg[x + 1] = pgg[x] + colgg[x]
-            dlo = 1 << 40
-            dhi = -(1 << 40)
-            for q in range(npt):
-                u = us[a + q]
-                if u - hw < 0 or u + hw >= W:
+                    scores[p, k] = 0.0
+            if v - hw < 0 or v + hw >= H:
+                for p in range(a, b):
                     for k in range(nk):
-                        bad[q, k] = True
-                    continue
-                s1 = pf[u + hw + 1] - pf[u - hw]
-                s2 = pff[u + hw + 1] - pff[u - hw]
-                var = s2 - s1 * s1 / m
-                if var <= _EPS:
-                    for k in range(nk):
-                        bad[q, k] = True
-                    continue
-                sf[q] = s1
-                vf[q] = var
-                c = centre[a + q]
-                dlo = min(dlo, c - halfwidth)
-                dhi = max(dhi, c + halfwidth)
-            for d in range(dlo, dhi + 1):
-                xlo = W
-                xhi = -1
+                        scores[p, k] = -2.0
+                continue
+            new_top = v - hw
+            if top < 0 or new_top - top >= side or new_top < top:
+                cols[:, :, :] = 0.0
+                cp[:, :, :] = 0.0
+                lo_add = new_top
+                lo_sub = 0
+                hi_sub = 0
+            else:
+                lo_add = top + side
+                lo_sub = top
+                hi_sub = new_top
+            for t in range(T):
+                for y in range(lo_add, new_top + side):
+                    _add_row(left, right, t, y, 1.0, dlo, nd, W, cols, cp)
+                for y in range(lo_sub, hi_sub):
+                    _add_row(left, right, t, y, -1.0, dlo, nd, W, cols, cp)
+            top = new_top
+            bad = np.zeros((npt, nk), np.bool_)
+            sf = np.empty(npt)
+            vf = np.empty(npt)
+            for t in range(T):
+                for j in range(4):
+                    pre[j, 0] = 0.0
+                    for x in range(W):
+                        pre[j, x + 1] = pre[j, x] + cols[t, j, x]
                 for q in range(npt):
-                    k = d - (centre[a + q] - halfwidth)
-                    if k < 0 or k >= nk or bad[q, k]:
-                        continue
                     u = us[a + q]
-                    xlo = min(xlo, u - hw)
-                    xhi = max(xhi, u + hw)
-                xlo = max(xlo, d)
-                xhi = min(xhi, W - 1 + d)
-                if xhi < xlo:
+                    if u - hw < 0 or u + hw >= W:
+                        for k in range(nk):
+                            bad[q, k] = True
+                        continue
+                    s1 = pre[0, u + hw + 1] - pre[0, u - hw]
+                    s2 = pre[1, u + hw + 1] - pre[1, u - hw]
+                    var = s2 - s1 * s1 / m
+                    if var <= _EPS:
+                        for k in range(nk):
+                            bad[q, k] = True
+                        continue
+                    sf[q] = s1
+                    vf[q] = var
+                for j in range(nd):
+                    d = dlo + j
+                    pp[0] = 0.0
+                    for x in range(W):
+                        pp[x + 1] = pp[x] + cp[t, j, x]
                     for q in range(npt):
                         k = d - (centre[a + q] - halfwidth)
-                        if 0 <= k < nk:
+                        if k < 0 or k >= nk or bad[q, k]:
+                            continue
+                        u = us[a + q]
+                        ur = u - d
+                        if ur - hw < 0 or ur + hw >= W:
                             bad[q, k] = True
-                    continue
-                for x in range(xlo, xhi + 1):
-                    cp[x] = 0.0
-                for y in range(v - hw, v + hw + 1):
-                    for x in range(xlo, xhi + 1):
-                        cp[x] += np.float64(left[t, y, x]) * np.float64(right[t, y, x - d])
-                pp[0] = 0.0
-                for x in range(xlo, xhi + 1):
-                    pp[x - xlo + 1] = pp[x - xlo] + cp[x]
-                for q in range(npt):
-                    k = d - (centre[a + q] - halfwidth)
-                    if k < 0 or k >= nk or bad[q, k]:
-                        continue
-                    u = us[a + q]
-                    ur = u - d
-                    if ur - hw < 0 or ur + hw >= W:
-                        bad[q, k] = True
-                        continue
-                    s1 = pg[ur + hw + 1] - pg[ur - hw]
-                    s2 = pgg[ur + hw + 1] - pgg[ur - hw]
-                    vg = s2 - s1 * s1 / m
-                    if vg <= _EPS:
-                        bad[q, k] = True
-                        continue
-                    sfg = pp[u + hw + 1 - xlo] - pp[u - hw - xlo]
-                    scores[a + q, k] += (sfg - sf[q] * s1 / m) / np.sqrt(vf[q] * vg)
-        for q in range(npt):
-            for k in range(nk):
-                if bad[q, k]:
-                    scores[a + q, k] = -2.0
-                else:
-                    scores[a + q, k] /= T
+                            continue
+                        s1 = pre[2, ur + hw + 1] - pre[2, ur - hw]
+                        s2 = pre[3, ur + hw + 1] - pre[3, ur - hw]
+                        vg = s2 - s1 * s1 / m
+                        if vg <= _EPS:
+                            bad[q, k] = True
+                            continue
+                        sfg = pp[u + hw + 1] - pp[u - hw]
+                        scores[a + q, k] += (sfg - sf[q] * s1 / m) / np.sqrt(vf[q] * vg)
+            for q in range(npt):
+                for k in range(nk):
+                    if bad[q, k]:
+                        scores[a + q, k] = -2.0
+                    else:
+                        scores[a + q, k] /= T
+
+
+@njit(cache=True, inline="always")
+def _add_row(left, right, t, y, sign, dlo, nd, W, cols, cp):
+    # Add (sign 1) or remove (sign -1) image row y of frame t to the column sums.
+    for x in range(W):
+        f = np.float64(left[t, y, x])
+        g = np.float64(right[t, y, x])
+        cols[t, 0, x] += sign * f
+        cols[t, 1, x] += sign * f * f
+        cols[t, 2, x] += sign * g
+        cols[t, 3, x] += sign * g * g
+    for j in range(nd):
+        d = dlo + j
+        x0 = max(0, d)
+        x1 = min(W, W + d)
+        for x in range(x0, x1):
+            cp[t, j, x] += sign * np.float64(left[t, y, x]) * np.float64(right[t, y, x - d])
+
+
+@njit(parallel=True, cache=True)
+def row_gradient(left, out):
+    """Row derivative of each image of a stack by the fourth-order central difference, into out.
+
+    Accurate gradients speed the Gauss–Newton convergence; the fixed point does not depend on
+    them to first order. The two columns at each edge (no full stencil) are set to zero.
+
+    Parameters
+    ----------
+    left : (T, H, W) images.  out : float64 (T, H, W), intensity per px.
+    """
+    T, H, W = left.shape
+    for k in prange(T * H):
+        t = k // H
+        r = k % H
+        for c in range(2, W - 2):
+            out[t, r, c] = (-np.float64(left[t, r, c + 2]) + 8.0 * left[t, r, c + 1] - 8.0 * left[t, r, c - 1]
+                            + left[t, r, c - 2]) / 12.0
+        for c in range(min(2, W)):
+            out[t, r, c] = 0.0
+            out[t, r, W - 1 - c] = 0.0
 
 
 @njit(cache=True)
@@ -283,7 +293,7 @@ def _invert_spd(a, n, out, work):
 
 
 @njit(parallel=True, cache=True, fastmath=_FAST)
-def icgn_refine(left, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, temporal,
+def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, temporal,
                 out_d, out_p, out_sigma, out_score, out_iter):
     """Inverse-compositional Gauss–Newton refinement of each point's disparity.
 
@@ -304,6 +314,7 @@ def icgn_refine(left, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, te
     Parameters
     ----------
     left : float32 (T, H, W) rectified left stack.
+    left_gx : float64 (T, H, W) its row gradient (:func:`row_gradient`), intensity per px.
     right_coef : float64 (T, H, W) row B-spline coefficients of the right stack.
     taus : float64 (T,) time of each frame relative to the window's centre (any unit).
     us, vs : int64 (N,) window centres, px.  d0 : float64 (N,) starting disparity, px.
@@ -335,6 +346,8 @@ def icgn_refine(left, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, te
         work = np.empty((npar, npar))
         grad = np.zeros(4)
         dp = np.zeros(4)
+        scale = np.empty(T)  # 1 / norm of each frame's zero-mean template
+        offs = np.arange(side) - hw + 0.0
         for p in range(c * chunk, min(n, (c + 1) * chunk)):
             u = us[p]
             v = vs[p]
@@ -348,43 +361,78 @@ def icgn_refine(left, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, te
                 continue
             # Template: zero-mean, unit-norm per frame; its row gradient; and the sums of the
             # steepest-descent images (A) and of their products with the template (B).
-            A[:, :] = 0.0
-            B[:, :] = 0.0
             hess[:, :] = 0.0
             flat = False
             for t in range(T):
-                norm = _centre_window(left, t, u, v, hw, fn)
-                if norm == 0.0:
-                    flat = True
-                    break
+                s = 0.0
+                for dy in range(side):
+                    for dx in range(side):
+                        s += left[t, v - hw + dy, u - hw + dx]
+                mean = s / m
+                ss = 0.0
+                a0s = 0.0
+                a1s = 0.0
+                a2s = 0.0
+                b0s = 0.0
+                b1s = 0.0
+                b2s = 0.0
                 for j in range(6):
                     mom[j] = 0.0
+                # Sums over the window, the dx-weighted ones per row and the dy-weighted ones
+                # from the row totals; f and g are kept unscaled and their norm applied at the end.
                 for dy in range(side):
                     row = v - hw + dy
                     ody = dy - hw
+                    ra0 = 0.0
+                    ra1 = 0.0
+                    rb0 = 0.0
+                    rb1 = 0.0
+                    rm0 = 0.0
+                    rm1 = 0.0
+                    rm2 = 0.0
                     for dx in range(side):
                         col = u - hw + dx
-                        odx = dx - hw
-                        f = fn[t, dy, dx] / norm
+                        f = left[t, row, col] - mean
+                        g = left_gx[t, row, col]
                         fn[t, dy, dx] = f
-                        # Fourth-order central difference: accurate gradients speed convergence;
-                        # the fixed point does not depend on them to first order.
-                        g = (-left[t, row, col + 2] + 8.0 * left[t, row, col + 1] - 8.0 * left[t, row, col - 1]
-                             + left[t, row, col - 2]) / (12.0 * norm)
                         gx[t, dy, dx] = g
-                        A[t, 0] += g
-                        A[t, 1] += g * odx
-                        A[t, 2] += g * ody
-                        B[t, 0] += g * f
-                        B[t, 1] += g * odx * f
-                        B[t, 2] += g * ody * f
+                        ss += f * f
+                        o = offs[dx]
+                        gf = g * f
                         g2 = g * g
-                        mom[0] += g2
-                        mom[1] += g2 * odx
-                        mom[2] += g2 * ody
-                        mom[3] += g2 * odx * odx
-                        mom[4] += g2 * odx * ody
-                        mom[5] += g2 * ody * ody
+                        ra0 += g
+                        ra1 += g * o
+                        rb0 += gf
+                        rb1 += gf * o
+                        rm0 += g2
+                        rm1 += g2 * o
+                        rm2 += g2 * o * o
+                    a0s += ra0
+                    a1s += ra1
+                    a2s += ody * ra0
+                    b0s += rb0
+                    b1s += rb1
+                    b2s += ody * rb0
+                    mom[0] += rm0
+                    mom[1] += rm1
+                    mom[2] += ody * rm0
+                    mom[3] += rm2
+                    mom[4] += ody * rm1
+                    mom[5] += ody * ody * rm0
+                if ss <= _EPS:
+                    flat = True
+                    break
+                inv = 1.0 / np.sqrt(ss)
+                scale[t] = inv
+                A[t, 0] = a0s * inv
+                A[t, 1] = a1s * inv
+                A[t, 2] = a2s * inv
+                inv2 = inv * inv
+                B[t, 0] = b0s * inv2
+                B[t, 1] = b1s * inv2
+                B[t, 2] = b2s * inv2
+                for j in range(6):
+                    mom[j] *= inv2
                 tau = taus[t]
                 hess[0, 0] += mom[0]
                 hess[0, 1] += mom[1]
@@ -444,7 +492,7 @@ def icgn_refine(left, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, te
                             sgg += val * val
                             q = gx[t, dy, dx] * val
                             r0 += q
-                            r1 += q * (dx - hw)
+                            r1 += q * offs[dx]
                             sfg += fn[t, dy, dx] * val
                         s0 += r0
                         s1 += r1
@@ -455,6 +503,11 @@ def icgn_refine(left, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, te
                     if ss <= _EPS:
                         bad = True
                         break
+                    inv = scale[t]
+                    s0 *= inv
+                    s1 *= inv
+                    s2 *= inv
+                    sfg *= inv
                     norm = np.sqrt(ss)
                     mean = sg / m
                     e0 = B[t, 0] - (s0 - mean * A[t, 0]) / norm
