@@ -59,3 +59,27 @@ def true_rig(truth_path, rig_name="rig", *, alpha=0.0):
 def make_true_rig():
     """The :func:`true_rig` helper, for test modules (conftest is not importable by name)."""
     return true_rig
+
+
+@pytest.fixture(scope="session")
+def scatter_heights(quick_session, tmp_path_factory):
+    """heights.h5 reconstructed from the rendered quick ``scatter`` session (datum, match, heights with the
+    session's exact rig), and the session folder: ``(heights_path, session_path)``. Built once per run."""
+    from surfrec.io.rigfile import write_rig
+
+    s = quick_session("scatter")
+    work = tmp_path_factory.mktemp("scatter-heights")
+    rig = work / "rig.json"
+    write_rig(true_rig(s / "truth.h5"), rig)
+
+    def run(*args):
+        res = subprocess.run([sys.executable, "-m", "surfrec.cli.main", *map(str, args), "-q"],
+                             capture_output=True, text=True)
+        assert res.returncode == 0, res.stderr
+
+    run("datum", "--rig", rig, "--left", s / "still" / "left", "--right", s / "still" / "right",
+        "-o", work / "datum.h5")
+    run("match", "--rig", rig, "--datum", work / "datum.h5", "--left", s / "waves" / "left", "--right",
+        s / "waves" / "right", "--timestamps", s / "waves" / "timestamps.csv", "-o", work / "disparity.h5")
+    run("heights", work / "disparity.h5", "--rig", rig, "--datum", work / "datum.h5", "-o", work / "heights.h5")
+    return work / "heights.h5", s

@@ -110,6 +110,17 @@ def command(heights, output, radii, depth, fit_k, centre, frequency, orders, n_b
         raise InputError(f"--centre {centre[0]:g},{centre[1]:g} mm lies outside the field (x {x[0]:g} to "
                          f"{x[-1]:g} mm, y {y[0]:g} to {y[-1]:g} mm)")
 
+    step = float(min(x[1] - x[0], y[1] - y[0]))
+    r1, r2 = radii
+    if r2 - r1 < 2 * step:
+        raise InputError(f"--radii {r1:g},{r2:g}: the range must span at least two grid steps ({2 * step:g} mm)")
+    if centre is not None:
+        room = min(centre[0] - x[0], x[-1] - centre[0], centre[1] - y[0], y[-1] - centre[1]) - 3 * step
+        if r2 > room:
+            raise InputError(f"--radii {r1:g},{r2:g}: a ring of {r2:g} mm about ({centre[0]:.4g}, {centre[1]:.4g}) "
+                             f"mm reaches beyond the data (grid x {x[0]:g} to {x[-1]:g}, y {y[0]:g} to {y[-1]:g} "
+                             f"mm); the largest radius that fits is {max(room, 0):.4g} mm")
+
     # Frequency: given, or the strongest peak of the field-average spectrum.
     freq_estimated = frequency is None
     if frequency is None:
@@ -142,26 +153,32 @@ def command(heights, output, radii, depth, fit_k, centre, frequency, orders, n_b
     k_theory = float(wavenumber(frequency, depth, **water)) if depth is not None else None
     k0 = k_theory if k_theory is not None else dominant_wavenumber(amp, x, y)["k"]
 
-    step = float(min(x[1] - x[0], y[1] - y[0]))
-    r1, r2 = radii
-    if r2 - r1 < 2 * step:
-        raise InputError(f"--radii {r1:g},{r2:g}: the range must span at least two grid steps ({2 * step:g} mm)")
+    margin = 3 * step  # the 6-point stencil needs 3 nodes beyond the ring
+
+    def check_ring(c):
+        room = min(c[0] - x[0], x[-1] - c[0], c[1] - y[0], y[-1] - c[1]) - margin
+        if r2 > room:
+            raise InputError(f"--radii {r1:g},{r2:g}: a ring of {r2:g} mm about ({c[0]:.4g}, {c[1]:.4g}) mm reaches "
+                             f"beyond the data (grid x {x[0]:g} to {x[-1]:g}, y {y[0]:g} to {y[-1]:g} mm); the "
+                             f"largest radius that fits is {max(room, 0):.4g} mm")
+
     centre_source = "given"
     if centre is None:
         radii_g, _ = polar_grid(r1, r2, step, k0 * r2)
-        centre, centre_source = estimate_centre(amp, x, y, k0, radii_g)
-        centre_source = f"estimated (compact scattered field, start from the {centre_source})"
+        centre, start_from = estimate_centre(amp, x, y, k0, radii_g)
+        if fit_k:
+            # The centre estimate needs k and the k fit needs the centre: alternate twice.
+            for _ in range(2):
+                check_ring(centre)
+                k0 = analyse_modes(fit, x, y, centre=centre, radii=(r1, r2), k=k0, orders=orders, fit_k=True,
+                                   n_boot=0)["k"]
+                centre, _ = estimate_centre(amp, x, y, k0, radii_g, guess=centre)
+        centre_source = f"estimated (compact scattered field, start from the {start_from})"
         log.info("centre estimated: (%.3f, %.3f) mm", *centre)
         if not (x[0] <= centre[0] <= x[-1] and y[0] <= centre[1] <= y[-1]):
             raise InputError(f"the estimated centre ({centre[0]:.3g}, {centre[1]:.3g}) mm lies outside the field; "
                              "give --centre")
-    # The 6-point stencil needs 3 nodes beyond the ring.
-    margin = 3 * step
-    fits = min(centre[0] - x[0], x[-1] - centre[0], centre[1] - y[0], y[-1] - centre[1]) - margin
-    if r2 > fits:
-        raise InputError(f"--radii {r1:g},{r2:g}: a ring of {r2:g} mm about ({centre[0]:.4g}, {centre[1]:.4g}) mm "
-                         f"reaches beyond the data (grid x {x[0]:g} to {x[-1]:g}, y {y[0]:g} to {y[-1]:g} mm); "
-                         f"the largest radius that fits is {max(fits, 0):.4g} mm")
+    check_ring(centre)
 
     res = analyse_modes(fit, x, y, centre=centre, radii=(r1, r2), k=k0, orders=orders, fit_k=fit_k, n_boot=n_boot,
                         seed=seed)
@@ -209,7 +226,7 @@ def command(heights, output, radii, depth, fit_k, centre, frequency, orders, n_b
               "gravity_m_s2": gravity, "surface_tension_n_m": surface_tension}
     title = str(heights)
     sub = (f"{frequency:.4g} Hz, k = {res['k']:.5g} rad/mm, centre ({centre[0]:.2f}, {centre[1]:.2f}) mm, r = "
-           f"{r1:g}-{r2:g} mm; ±1σ: block bootstrap (time and azimuth, larger), {n_boot} replicates")
+           f"{r1:g}-{r2:g} mm\n±1σ: block bootstrap (time and azimuth, larger), {n_boot} replicates")
     with atomic_folder(out, force=force) as tmp:
         fig = reflection_figure(res["m"], res["R"], np.nan_to_num(sig["R_abs"]), np.nan_to_num(sig["R_phase_deg"]),
                                 title=title, subtitle=sub)
