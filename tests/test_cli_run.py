@@ -120,6 +120,7 @@ def test_pool_chunks_equal_the_sequential_stages(prepared, tmp_path):
     assert ds.height.dims == ("time", "y", "x") and ds.height.sizes["time"] == 18
     assert not (real / "heights.h5.journal").exists()      # removed once the output is in place
     log = (real / "heights.log").read_text()
+    assert '(threads {"numba": 1, "opencv": 1})' in log     # one compute thread per worker
     assert "chunk 4 (frames 16-17)" in log and "summary:" in log and "rig check at the start" in log
     summary = json.loads(log.split("summary: ")[-1].splitlines()[0])
     assert summary["frames"] == 18 and summary["valid_fraction_mean"] > 0.9

@@ -13,7 +13,6 @@ listen on a network that untrusted machines reach (docs/batch-runs.md).
 from __future__ import annotations
 
 import concurrent.futures as cf
-import contextlib
 import os
 
 from surfrec.errors import InputError
@@ -47,22 +46,15 @@ class SerialExecutor:
         pass
 
 
-@contextlib.contextmanager
 def _thread_env():
-    # Workers read these when their libraries load: set them for the children
-    # the pool spawns, and restore this process's environment afterwards.
+    # BLAS and OpenMP read these when numpy loads, which in a spawned worker
+    # happens before its initializer runs: so they go into the environment the
+    # workers inherit. They stay set here too (this process's libraries have
+    # read theirs already). numba's variable is set by each worker itself,
+    # before it loads numba (see surfrec.batch.worker.limit_threads).
     from surfrec.batch.worker import THREAD_ENV
 
-    old = {k: os.environ.get(k) for k in THREAD_ENV}
-    os.environ.update(THREAD_ENV)
-    try:
-        yield
-    finally:
-        for k, v in old.items():
-            if v is None:
-                os.environ.pop(k, None)
-            else:
-                os.environ[k] = v
+    os.environ.update({k: v for k, v in THREAD_ENV.items() if k != "NUMBA_NUM_THREADS"})
 
 
 class LocalPool:
@@ -79,8 +71,7 @@ class LocalPool:
 
         self.workers = int(workers)
         self.name = f"a local pool of {self.workers} worker processes"
-        self._env = _thread_env()
-        self._env.__enter__()
+        _thread_env()
         self.pool = cf.ProcessPoolExecutor(max_workers=self.workers, mp_context=mp.get_context("spawn"),
                                            initializer=worker_init)
 
@@ -92,10 +83,7 @@ class LocalPool:
         return list(done)
 
     def shutdown(self, cancel: bool = False):
-        try:
-            self.pool.shutdown(wait=True, cancel_futures=cancel)
-        finally:
-            self._env.__exit__(None, None, None)
+        self.pool.shutdown(wait=True, cancel_futures=cancel)
 
 
 class DaskExecutor:

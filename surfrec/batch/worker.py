@@ -70,9 +70,18 @@ class JobSpec:
 
 
 def limit_threads() -> None:
-    """One compute thread in this process (OpenCV, numba, BLAS/OpenMP)."""
+    """One compute thread in this process (OpenCV, numba, BLAS/OpenMP).
+
+    numba's thread count is set through the environment only before numba is
+    loaded (a worker's case): once its threads run, changing the variable
+    makes numba's next compilation fail, so a process that already uses numba
+    gets the run-time limit (``numba.set_num_threads``) alone.
+    """
+    import sys
+
     for k, v in THREAD_ENV.items():
-        os.environ[k] = v
+        if k != "NUMBA_NUM_THREADS" or "numba" not in sys.modules:
+            os.environ[k] = v
     import cv2
 
     cv2.setNumThreads(1)
@@ -116,7 +125,8 @@ class _SlotFrames:
         return len(self.index)
 
 
-def _state(spec: JobSpec) -> dict:
+def _state(spec: JobSpec, *, limit: bool = True) -> dict:
+    """The run's set-up in this process (made once per run; ``limit``: one compute thread)."""
     if _STATE.get("token") == spec.token:
         return _STATE
     from surfrec.geometry.session import prepare_heights
@@ -125,7 +135,8 @@ def _state(spec: JobSpec) -> dict:
     from surfrec.io.rigfile import read_rig
     from surfrec.match.session import prepare_matching
 
-    limit_threads()
+    if limit:
+        limit_threads()
     rig = read_rig(spec.rig)
     datum = read_datum(spec.datum)
     lf = open_frames(spec.left, expected_size=rig.image_size, name="left images")
@@ -203,11 +214,20 @@ def run_chunk(spec: JobSpec, start: int, stop: int) -> dict:
     finite = np.isfinite(height)
     level = float(height[finite].mean()) if finite.any() else float("nan")
     info = {"reasons": reasons, "resample": resample, "bad_frames": bad, "level_mm": level,
-            "check": _periodic_check(spec, st, start, stop), "host": os.uname().nodename, "pid": os.getpid()}
+            "check": _periodic_check(spec, st, start, stop), "host": os.uname().nodename, "pid": os.getpid(),
+            "threads": _threads()}
     info["seconds"] = time.monotonic() - t0
     return {"height": height, "uncertainty": sigma, "flags": flags, "time": np.asarray(spec.slot_time[start:stop]),
             "coverage": coverage, "valid_fraction": valid, "sigma_median_mm": smed,
             "info": np.array(json.dumps(info))}
+
+
+def _threads() -> dict:
+    """Compute threads this process uses (recorded per chunk, so the log shows one per worker)."""
+    import cv2
+    import numba
+
+    return {"numba": int(numba.get_num_threads()), "opencv": int(cv2.getNumThreads())}
 
 
 def _names(st, slot) -> str:

@@ -133,7 +133,7 @@ def _run(run_file, workers, scheduler, security_path, strict_rig, force):
     # The set-up the workers make, made here too: it validates the inputs once
     # more before anything starts, and gives the grid of heights.h5.
     try:
-        st = _state(spec)
+        st = _state(spec, limit=False)
     except ValueError as exc:
         raise InputError(str(exc)) from None
     setup, hsetup = st["setup"], st["hsetup"]
@@ -306,8 +306,9 @@ def _chunk_record(k, a, b, res, info, level0, drift_mm):
     import numpy as np
 
     level = info.get("level_mm", float("nan"))
-    record.info("chunk %d (frames %d-%d): %.2f s on %s[%s], valid %.1f%%, coverage %.1f%%, mean level %+.4f mm%s",
-                k, a, b - 1, info.get("seconds", float("nan")), info.get("host"), info.get("pid"),
+    record.info("chunk %d (frames %d-%d): %.2f s on %s[%s] (threads %s), valid %.1f%%, coverage %.1f%%, "
+                "mean level %+.4f mm%s", k, a, b - 1, info.get("seconds", float("nan")), info.get("host"),
+                info.get("pid"), json.dumps(info.get("threads")),
                 100 * float(np.mean(res["valid_fraction"])), 100 * float(np.mean(res["coverage"])), level,
                 "".join(f"; {what} frame {s} ({names})" for s, what, names in info.get("bad_frames", [])))
     for s, what, names in info.get("bad_frames", []):
