@@ -60,24 +60,30 @@ def _bspline5_weights(f, w):
 _FAST = {"reassoc", "contract", "arcp", "nsz"}
 
 
+_ONE = np.uint64(1)
+_TWO = np.uint64(2)
+_THREE = np.uint64(3)
+
+
 @njit(cache=True, inline="always")
-def _spline3_at(coef, t, row, x):
-    # Cubic B-spline value at column x (caller checks 1 <= x < n - 2).
-    i = int(x)
-    f = x - i
+def _spline3_at(crow, x):
+    # Cubic B-spline value at column x of one row of coefficients (caller checks 1 <= x < n - 2).
+    # Unsigned indices: numba then skips its negative-index wraparound, which blocks vectorising.
+    i = np.uint64(x)
+    f = x - np.float64(i)
     g = 1.0 - f
     f2 = f * f
     f3 = f2 * f
-    return (g * g * g * coef[t, row, i - 1] + (3.0 * f3 - 6.0 * f2 + 4.0) * coef[t, row, i]
-            + (-3.0 * f3 + 3.0 * f2 + 3.0 * f + 1.0) * coef[t, row, i + 1] + f3 * coef[t, row, i + 2]) / 6.0
+    return (g * g * g * crow[i - _ONE] + (3.0 * f3 - 6.0 * f2 + 4.0) * crow[i]
+            + (-3.0 * f3 + 3.0 * f2 + 3.0 * f + 1.0) * crow[i + _ONE] + f3 * crow[i + _TWO]) / 6.0
 
 
 @njit(cache=True, inline="always")
-def _spline5_at(coef, t, row, x):
+def _spline5_at(crow, x):
     # Quintic B-spline value at column x (caller checks 2 <= x < n - 3); pieces of beta5 as in
     # _bspline5_weights.
-    i = int(x)
-    f = x - i
+    i = np.uint64(x)
+    f = x - np.float64(i)
     g = 1.0 - f
     y = f + 1.0
     y2 = y * y
@@ -89,8 +95,8 @@ def _spline5_at(coef, t, row, x):
     g2 = g * g
     w2 = 66.0 - 60.0 * f2 + 30.0 * f2 * f2 - 10.0 * f2 * f2 * f
     w3 = 66.0 - 60.0 * g2 + 30.0 * g2 * g2 - 10.0 * g2 * g2 * g
-    return (g2 * g2 * g * coef[t, row, i - 2] + w1 * coef[t, row, i - 1] + w2 * coef[t, row, i]
-            + w3 * coef[t, row, i + 1] + w4 * coef[t, row, i + 2] + f2 * f2 * f * coef[t, row, i + 3]) / 120.0
+    return (g2 * g2 * g * crow[i - _TWO] + w1 * crow[i - _ONE] + w2 * crow[i] + w3 * crow[i + _ONE]
+            + w4 * crow[i + _TWO] + f2 * f2 * f * crow[i + _THREE]) / 120.0
 
 
 @njit(parallel=True, cache=True, fastmath=_FAST)
@@ -225,19 +231,30 @@ def zncc_search(left, right, us, vs, centre, row_start, halfwidth, hw, scores):
 @njit(cache=True, inline="always")
 def _add_row(left, right, t, y, sign, dlo, nd, W, cols, cp):
     # Add (sign 1) or remove (sign -1) image row y of frame t to the column sums.
+    lrow = left[t, y]
+    rrow = right[t, y]
+    c0 = cols[t, 0]
+    c1 = cols[t, 1]
+    c2 = cols[t, 2]
+    c3 = cols[t, 3]
     for x in range(W):
-        f = np.float64(left[t, y, x])
-        g = np.float64(right[t, y, x])
-        cols[t, 0, x] += sign * f
-        cols[t, 1, x] += sign * f * f
-        cols[t, 2, x] += sign * g
-        cols[t, 3, x] += sign * g * g
+        f = np.float64(lrow[x])
+        g = np.float64(rrow[x])
+        c0[x] += sign * f
+        c1[x] += sign * f * f
+        c2[x] += sign * g
+        c3[x] += sign * g * g
     for j in range(nd):
         d = dlo + j
         x0 = max(0, d)
         x1 = min(W, W + d)
-        for x in range(x0, x1):
-            cp[t, j, x] += sign * np.float64(left[t, y, x]) * np.float64(right[t, y, x - d])
+        # 0-based views so that the loop index is provably non-negative (no wraparound tests,
+        # which keep the compiler from vectorising).
+        a = lrow[x0:x1]
+        b = rrow[x0 - d:x1 - d]
+        out = cp[t, j, x0:x1]
+        for i in range(x1 - x0):
+            out[i] += sign * (np.float64(a[i]) * np.float64(b[i]))
 
 
 @njit(parallel=True, cache=True)
@@ -366,8 +383,9 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
             for t in range(T):
                 s = 0.0
                 for dy in range(side):
+                    lrow = left[t, v - hw + dy, u - hw:u + hw + 1]
                     for dx in range(side):
-                        s += left[t, v - hw + dy, u - hw + dx]
+                        s += lrow[dx]
                 mean = s / m
                 ss = 0.0
                 a0s = 0.0
@@ -390,12 +408,17 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                     rm0 = 0.0
                     rm1 = 0.0
                     rm2 = 0.0
+                    # Views starting at the window's first column keep the indices provably
+                    # non-negative (see _spline3_at).
+                    lrow = left[t, row, u - hw:u + hw + 1]
+                    grow = left_gx[t, row, u - hw:u + hw + 1]
+                    frow = fn[t, dy]
+                    gxrow = gx[t, dy]
                     for dx in range(side):
-                        col = u - hw + dx
-                        f = left[t, row, col] - mean
-                        g = left_gx[t, row, col]
-                        fn[t, dy, dx] = f
-                        gx[t, dy, dx] = g
+                        f = lrow[dx] - mean
+                        g = grow[dx]
+                        frow[dx] = f
+                        gxrow[dx] = g
                         ss += f * f
                         o = offs[dx]
                         gf = g * f
@@ -482,18 +505,21 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                             break
                         r0 = 0.0
                         r1 = 0.0
+                        crow = right_coef[t, row]
+                        grow = gx[t, dy]
+                        frow = fn[t, dy]
                         for dx in range(side):
                             x = x0 + dx * step
                             if order == 3:
-                                val = _spline3_at(right_coef, t, row, x)
+                                val = _spline3_at(crow, x)
                             else:
-                                val = _spline5_at(right_coef, t, row, x)
+                                val = _spline5_at(crow, x)
                             sg += val
                             sgg += val * val
-                            q = gx[t, dy, dx] * val
+                            q = grow[dx] * val
                             r0 += q
                             r1 += q * offs[dx]
-                            sfg += fn[t, dy, dx] * val
+                            sfg += frow[dx] * val
                         s0 += r0
                         s1 += r1
                         s2 += ody * r0
