@@ -106,9 +106,20 @@ def worker_init() -> None:
     the chunks in hand, so the workers must not die of it.
     """
     import signal
+    import threading
 
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     limit_threads()
+    # A client killed with SIGKILL cannot stop its pool: each worker leaves by
+    # itself once its parent is gone (it is then adopted by another process).
+    parent = os.getppid()
+
+    def watch():
+        while os.getppid() == parent:
+            time.sleep(1.0)
+        os._exit(1)
+
+    threading.Thread(target=watch, daemon=True, name="surfrec-parent-watch").start()
 
 
 class _SlotFrames:
