@@ -350,11 +350,14 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
     m = side * side
     lo = 1 if order == 3 else 2  # spline taps left of floor(x) ...
     hi = 2 if order == 3 else 3  # ... and right of it
+    sidep = (side + 7) // 8 * 8
     # Points in chunks, with scratch arrays allocated once per chunk rather than per point.
     chunk = 64
     for c in prange((n + chunk - 1) // chunk):
-        fn = np.empty((T, side, side))
-        gx = np.empty((T, side, side))
+        # Rows padded with zeros to a multiple of 8 so that the sampling loop runs in whole
+        # SIMD vectors (the pad's template and gradient are zero, its samples masked out).
+        fn = np.zeros((T, side, sidep))
+        gx = np.zeros((T, side, sidep))
         A = np.empty((T, 3))  # sums of the steepest-descent images (over the window, per frame) ...
         B = np.empty((T, 3))  # ... and of their products with the template
         mom = np.empty(6)  # sums of gx^2 times 1, dx, dy, dx^2, dx dy, dy^2
@@ -364,7 +367,11 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
         grad = np.zeros(4)
         dp = np.zeros(4)
         scale = np.empty(T)  # 1 / norm of each frame's zero-mean template
-        offs = np.arange(side) - hw + 0.0
+        offs = np.zeros(sidep)
+        keep = np.zeros(sidep)
+        for dx in range(side):
+            offs[dx] = dx - hw
+            keep[dx] = 1.0
         for p in range(c * chunk, min(n, (c + 1) * chunk)):
             u = us[p]
             v = vs[p]
@@ -508,18 +515,41 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                         crow = right_coef[t, row]
                         grow = gx[t, dy]
                         frow = fn[t, dy]
-                        for dx in range(side):
-                            x = x0 + dx * step
-                            if order == 3:
-                                val = _spline3_at(crow, x)
-                            else:
-                                val = _spline5_at(crow, x)
-                            sg += val
-                            sgg += val * val
-                            q = grow[dx] * val
-                            r0 += q
-                            r1 += q * offs[dx]
-                            sfg += frow[dx] * val
+                        i0 = np.uint64(x0)
+                        if order == 3 and np.uint64(x1) == i0 + np.uint64(2 * hw) and \
+                                i0 + np.uint64(sidep + 2) <= np.uint64(W):
+                            # The usual case: the samples fall in consecutive intervals (floor(x) - dx
+                            # is monotonic in dx and equal at both ends), so the taps are contiguous
+                            # loads and the fraction is x0 - i0 + dx a1: the loop vectorises.
+                            seg = crow[i0 - _ONE:i0 + np.uint64(sidep + 2)]
+                            f0 = x0 - np.float64(i0)
+                            for dx in range(sidep):
+                                f = f0 + dx * a1
+                                g = 1.0 - f
+                                f2 = f * f
+                                f3 = f2 * f
+                                val = (g * g * g * seg[dx] + (3.0 * f3 - 6.0 * f2 + 4.0) * seg[dx + 1]
+                                       + (-3.0 * f3 + 3.0 * f2 + 3.0 * f + 1.0) * seg[dx + 2]
+                                       + f3 * seg[dx + 3]) * (keep[dx] / 6.0)
+                                sg += val
+                                sgg += val * val
+                                q = grow[dx] * val
+                                r0 += q
+                                r1 += q * offs[dx]
+                                sfg += frow[dx] * val
+                        else:
+                            for dx in range(side):
+                                x = x0 + dx * step
+                                if order == 3:
+                                    val = _spline3_at(crow, x)
+                                else:
+                                    val = _spline5_at(crow, x)
+                                sg += val
+                                sgg += val * val
+                                q = grow[dx] * val
+                                r0 += q
+                                r1 += q * offs[dx]
+                                sfg += frow[dx] * val
                         s0 += r0
                         s1 += r1
                         s2 += ody * r0
