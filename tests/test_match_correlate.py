@@ -131,3 +131,33 @@ def test_spatiotemporal_stack_with_linear_motion():
                                          temporal=True)
     np.testing.assert_allclose(d, d_mid, atol=0.005)
     np.testing.assert_allclose(params[:, 3], rate, atol=0.003)
+
+
+def test_second_order_shape_follows_a_curved_disparity_field():
+    # A right image whose disparity is curved along rows: d(u) = d0 + c (u - uc)^2. Least squares
+    # of a first-order shape against it leaves a bias of about c * <dx^2> (the window's
+    # gradient-weighted mean of dx^2: the affine fit of a parabola), the second-order shape
+    # (Lu & Cary, Exp. Mech. 40 (2000) 393) none.
+    left = _speckle(100, 300, seed=7)
+    d0, c, uc = 5.0, 4e-4, 150.0
+    vv, uu = np.mgrid[0:100, 0:300].astype(float)
+    # R(x) = L(u) with x = u - d(u): solve for u by Newton's method (d is smooth, |d'| << 1).
+    u_of_x = uu + d0
+    for _ in range(20):
+        resid = u_of_x - (d0 + c * (u_of_x - uc) ** 2) - uu
+        u_of_x -= resid / (1.0 - 2.0 * c * (u_of_x - uc))
+    right = ndimage.map_coordinates(ndimage.spline_filter(left, order=5), [vv, u_of_x], order=5, prefilter=False)
+    us, vs = np.arange(110, 190, 8), np.full(10, 50)
+    d_true = d0 + c * (us - uc) ** 2
+    coef = row_spline_coefficients(right, 5)
+    hw = 10
+    d1, p1, *_ = refine(left, coef, us, vs, np.round(d_true), 2 * hw + 1)
+    d2, p2, *_ = refine(left, coef, us, vs, np.round(d_true), 2 * hw + 1, shape_order=2)
+    np.testing.assert_allclose(d2, d_true, atol=0.004)
+    np.testing.assert_allclose(p2[:, 1], 2 * c * (us - uc), atol=2e-3)  # the slope d'(u)
+    gx = ndimage.convolve1d(left, np.array([-1, 8, 0, -8, 1]) / 12.0, axis=1)
+    dx2 = np.arange(-hw, hw + 1) ** 2.0
+    predicted = [c * np.sum(gx[v - hw:v + hw + 1, u - hw:u + hw + 1] ** 2 * dx2)
+                 / np.sum(gx[v - hw:v + hw + 1, u - hw:u + hw + 1] ** 2) for u, v in zip(us, vs)]
+    np.testing.assert_allclose(d1 - d_true, predicted, rtol=0.3)
+    assert np.max(np.abs(d2 - d_true)) < 0.2 * np.min(np.abs(d1 - d_true))

@@ -92,7 +92,7 @@ def integer_search(left, right, us, vs, centre, halfwidth: int, window: int):
 
 
 def refine(left, right_coef, us, vs, d0, window: int, *, order: int = 5, taus=None, temporal: bool = False,
-           max_iter: int = 20, tol: float = 1e-3):
+           shape_order: int = 1, max_iter: int = 20, tol: float = 1e-3):
     """IC-GN refinement from the starting disparities d0 (px).
 
     Parameters
@@ -101,6 +101,8 @@ def refine(left, right_coef, us, vs, d0, window: int, *, order: int = 5, taus=No
         row B-spline coefficients (:func:`row_spline_coefficients`).
     taus : (T,) frame times relative to the window centre, in frames.
     temporal : estimate the linear-in-time term (T >= 2).
+    shape_order : 1 (disparity, its two slopes) or 2 (also its three second derivatives,
+        for surfaces curved on the scale of the window).
     max_iter : iterations before a point counts as not converged.
     tol : px; iterations stop once the update is smaller. The step after
         that is far smaller again (Gauss–Newton converges fast near the
@@ -128,7 +130,7 @@ def refine(left, right_coef, us, vs, d0, window: int, *, order: int = 5, taus=No
     kernels.row_gradient(left, left_gx)
     kernels.icgn_refine(left, left_gx, right_coef, taus, np.ascontiguousarray(us, dtype=np.int64),
                         np.ascontiguousarray(vs, dtype=np.int64), start, int(window) // 2, int(order),
-                        int(max_iter), float(tol), bool(temporal and T > 1),
+                        int(max_iter), float(tol), bool(temporal and T > 1), shape_order == 2,
                         out_d, out_p, out_sigma, out_score, out_iter)
     out_d[~np.isfinite(d0)] = np.nan
     return out_d, out_p, out_sigma, out_score, out_iter

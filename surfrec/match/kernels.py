@@ -309,24 +309,38 @@ def _invert_spd(a, n, out, work):
     return True
 
 
+# Shape-function terms, in this order: 0 const, 1 dx, 2 dy, 3 tau, 4 dx^2/2, 5 dx dy, 6 dy^2/2.
+# Each term is coefficient * dx^a dy^b tau^c; the tables give (a, b, c, coefficient).
+_TERM_A = np.array([0, 1, 0, 0, 2, 1, 0])
+_TERM_B = np.array([0, 0, 1, 0, 0, 1, 2])
+_TERM_C = np.array([0, 0, 0, 1, 0, 0, 0])
+_TERM_K = np.array([1.0, 1.0, 1.0, 1.0, 0.5, 1.0, 0.5])
+
+
 @njit(parallel=True, cache=True, fastmath=_FAST)
-def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, temporal,
+def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, temporal, second,
                 out_d, out_p, out_sigma, out_score, out_iter):
     """Inverse-compositional Gauss–Newton refinement of each point's disparity.
 
-    Shape function (horizontal, first order, plus a linear-in-time term in the
-    spatio-temporal mode): a template pixel at offsets (dx, dy) from the point,
-    in frame t of the window, is matched at right column
-        u + dx + a0 + a1 dx + a2 dy + a3 tau_t,
+    Shape function (horizontal; first order, or second order with
+    ``second``; plus a linear-in-time term in the spatio-temporal mode): a
+    template pixel at offsets (dx, dy) from the point, in frame t of the
+    window, is matched at right column
+        u + dx + a0 + a1 dx + a2 dy + a3 tau_t [+ a4 dx^2/2 + a5 dx dy + a6 dy^2/2],
     so d = -a0 at the window centre and frame tau = 0, d_u = -a1, d_v = -a2,
     d_t = -a3 (px per unit of tau). The criterion is the zero-normalised SSD
     summed over frames (Pan et al. 2013; Baker & Matthews 2004), which is
-    insensitive to brightness changes per frame and equals 2 (1 - ZNCC).
+    insensitive to brightness changes per frame and equals 2 (1 - ZNCC). The
+    second-order terms follow the surface's curvature (Lu & Cary, Exp. Mech.
+    40 (2000) 393; in inverse-compositional form Gao et al., Opt. Lasers Eng.
+    65 (2015) 73): without them a curved surface biases d toward the window
+    mean and leaves a misfit that the 1-sigma does not account for.
 
-    The steepest-descent images are the template's row gradient times
-    (1, dx, dy, tau), so each iteration needs only six sums over the warped
-    window (g, g^2, gx g, gx g dx, gx g dy, f g); the terms that involve the
-    template alone are computed once per point.
+    The steepest-descent images are the template's row gradient times the
+    shape terms, so each iteration needs only a few sums over the warped
+    window (g, g^2, f g, and gx g times 1, dx, dx^2 per row, combined with
+    the row's dy); the terms that involve the template alone are computed
+    once per point.
 
     Parameters
     ----------
@@ -337,6 +351,7 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
     us, vs : int64 (N,) window centres, px.  d0 : float64 (N,) starting disparity, px.
     hw : window half-size.  order : 3 or 5.  max_iter, tol (px) : stopping rule.
     temporal : bool, estimate a3 (only meaningful for T > 1).
+    second : bool, include the second-order terms a4..a6.
 
     Outputs (N,): out_d disparity px (NaN when not converged or outside);
     out_p (N, 4) the shape parameters [d, d_u, d_v, d_t]; out_sigma the
@@ -345,7 +360,16 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
     """
     T, H, W = left.shape
     n = us.shape[0]
-    npar = 4 if temporal else 3
+    # The active terms.
+    act = np.empty(7, np.int64)
+    npar = 0
+    for j in range(7):
+        if j == 3 and not temporal:
+            continue
+        if j >= 4 and not second:
+            continue
+        act[npar] = j
+        npar += 1
     side = 2 * hw + 1
     m = side * side
     lo = 1 if order == 3 else 2  # spline taps left of floor(x) ...
@@ -358,14 +382,15 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
         # SIMD vectors (the pad's template and gradient are zero, its samples masked out).
         fn = np.zeros((T, side, sidep))
         gx = np.zeros((T, side, sidep))
-        A = np.empty((T, 3))  # sums of the steepest-descent images (over the window, per frame) ...
-        B = np.empty((T, 3))  # ... and of their products with the template
-        mom = np.empty(6)  # sums of gx^2 times 1, dx, dy, dx^2, dx dy, dy^2
+        A = np.empty((T, 7))  # sums of the steepest-descent images (over the window, per frame) ...
+        B = np.empty((T, 7))  # ... and of their products with the template
+        mom = np.empty((5, 5))  # sums of gx^2 dx^a dy^b, a + b <= 4
         hess = np.empty((npar, npar))
         hinv = np.empty((npar, npar))
         work = np.empty((npar, npar))
-        grad = np.zeros(4)
-        dp = np.zeros(4)
+        grad = np.zeros(7)
+        dp = np.zeros(7)
+        sums = np.zeros(7)
         scale = np.empty(T)  # 1 / norm of each frame's zero-mean template
         offs = np.zeros(sidep)
         keep = np.zeros(sidep)
@@ -383,8 +408,6 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                 out_p[p, j] = np.nan
             if v - hw < 0 or v + hw >= H or u - hw - 2 < 0 or u + hw + 2 >= W:
                 continue
-            # Template: zero-mean, unit-norm per frame; its row gradient; and the sums of the
-            # steepest-descent images (A) and of their products with the template (B).
             hess[:, :] = 0.0
             flat = False
             for t in range(T):
@@ -395,26 +418,26 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                         s += lrow[dx]
                 mean = s / m
                 ss = 0.0
-                a0s = 0.0
-                a1s = 0.0
-                a2s = 0.0
-                b0s = 0.0
-                b1s = 0.0
-                b2s = 0.0
-                for j in range(6):
-                    mom[j] = 0.0
-                # Sums over the window, the dx-weighted ones per row and the dy-weighted ones
-                # from the row totals; f and g are kept unscaled and their norm applied at the end.
+                for j in range(7):
+                    A[t, j] = 0.0
+                    B[t, j] = 0.0
+                mom[:, :] = 0.0
+                # Sums over the window: the dx powers per row, the dy powers from the row totals;
+                # f and g are kept unscaled and their norm applied at the end.
                 for dy in range(side):
                     row = v - hw + dy
                     ody = dy - hw
                     ra0 = 0.0
                     ra1 = 0.0
+                    ra2 = 0.0
                     rb0 = 0.0
                     rb1 = 0.0
+                    rb2 = 0.0
                     rm0 = 0.0
                     rm1 = 0.0
                     rm2 = 0.0
+                    rm3 = 0.0
+                    rm4 = 0.0
                     # Views starting at the window's first column keep the indices provably
                     # non-negative (see _spline3_at).
                     lrow = left[t, row, u - hw:u + hw + 1]
@@ -428,53 +451,67 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                         gxrow[dx] = g
                         ss += f * f
                         o = offs[dx]
+                        o2 = o * o
                         gf = g * f
                         g2 = g * g
                         ra0 += g
                         ra1 += g * o
+                        ra2 += g * o2
                         rb0 += gf
                         rb1 += gf * o
+                        rb2 += gf * o2
                         rm0 += g2
                         rm1 += g2 * o
-                        rm2 += g2 * o * o
-                    a0s += ra0
-                    a1s += ra1
-                    a2s += ody * ra0
-                    b0s += rb0
-                    b1s += rb1
-                    b2s += ody * rb0
-                    mom[0] += rm0
-                    mom[1] += rm1
-                    mom[2] += ody * rm0
-                    mom[3] += rm2
-                    mom[4] += ody * rm1
-                    mom[5] += ody * ody * rm0
+                        rm2 += g2 * o2
+                        rm3 += g2 * o2 * o
+                        rm4 += g2 * o2 * o2
+                    A[t, 0] += ra0
+                    A[t, 1] += ra1
+                    A[t, 2] += ody * ra0
+                    A[t, 4] += 0.5 * ra2
+                    A[t, 5] += ody * ra1
+                    A[t, 6] += 0.5 * ody * ody * ra0
+                    B[t, 0] += rb0
+                    B[t, 1] += rb1
+                    B[t, 2] += ody * rb0
+                    B[t, 4] += 0.5 * rb2
+                    B[t, 5] += ody * rb1
+                    B[t, 6] += 0.5 * ody * ody * rb0
+                    yb = 1.0
+                    for b in range(5):
+                        mom[0, b] += yb * rm0
+                        if b <= 3:
+                            mom[1, b] += yb * rm1
+                        if b <= 2:
+                            mom[2, b] += yb * rm2
+                        if b <= 1:
+                            mom[3, b] += yb * rm3
+                        if b == 0:
+                            mom[4, b] += rm4
+                        yb *= ody
                 if ss <= _EPS:
                     flat = True
                     break
                 inv = 1.0 / np.sqrt(ss)
                 scale[t] = inv
-                A[t, 0] = a0s * inv
-                A[t, 1] = a1s * inv
-                A[t, 2] = a2s * inv
                 inv2 = inv * inv
-                B[t, 0] = b0s * inv2
-                B[t, 1] = b1s * inv2
-                B[t, 2] = b2s * inv2
-                for j in range(6):
-                    mom[j] *= inv2
                 tau = taus[t]
-                hess[0, 0] += mom[0]
-                hess[0, 1] += mom[1]
-                hess[0, 2] += mom[2]
-                hess[1, 1] += mom[3]
-                hess[1, 2] += mom[4]
-                hess[2, 2] += mom[5]
-                if npar == 4:
-                    hess[0, 3] += mom[0] * tau
-                    hess[1, 3] += mom[1] * tau
-                    hess[2, 3] += mom[2] * tau
-                    hess[3, 3] += mom[0] * tau * tau
+                A[t, 3] = tau * A[t, 0]
+                B[t, 3] = tau * B[t, 0]
+                for j in range(7):
+                    A[t, j] *= inv
+                    B[t, j] *= inv2
+                for i in range(npar):
+                    ti = act[i]
+                    for j in range(i, npar):
+                        tj = act[j]
+                        w = _TERM_K[ti] * _TERM_K[tj] * mom[_TERM_A[ti] + _TERM_A[tj], _TERM_B[ti] + _TERM_B[tj]]
+                        cpow = _TERM_C[ti] + _TERM_C[tj]
+                        if cpow == 1:
+                            w *= tau
+                        elif cpow == 2:
+                            w *= tau * tau
+                        hess[i, j] += w * inv2
             if flat:
                 continue
             for i in range(npar):
@@ -486,45 +523,75 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
             a1 = 0.0
             a2 = 0.0
             a3 = 0.0
+            a4 = 0.0
+            a5 = 0.0
+            a6 = 0.0
             converged = False
             bad = False
             it = 0
             ssd = 0.0
             for it in range(1, max_iter + 1):
-                for i in range(4):
+                for i in range(7):
                     grad[i] = 0.0
                 ssd = 0.0
-                step = 1.0 + a1
                 for t in range(T):
                     sg = 0.0
                     sgg = 0.0
                     s0 = 0.0
                     s1 = 0.0
                     s2 = 0.0
+                    s4 = 0.0
+                    s5 = 0.0
+                    s6 = 0.0
                     sfg = 0.0
                     for dy in range(side):
                         row = v - hw + dy
                         ody = dy - hw
-                        x0 = u - hw + a0 - a1 * hw + a2 * ody + a3 * taus[t]
-                        x1 = x0 + 2 * hw * step
-                        if min(x0, x1) < lo or np.floor(max(x0, x1)) + hi > W - 1 or not (x0 == x0 and x1 == x1):
+                        # Along the row the column is x(dx) = i-th sample at
+                        #   xa + dx (1 + b1) + b2 dx^2,  dx = 0 .. 2 hw,
+                        # and x(dx) - dx is a parabola in dx: its extremes lie at the ends or the vertex.
+                        b1 = a1 + a5 * ody - a4 * hw
+                        b2 = 0.5 * a4
+                        xa = (u - hw + a0 - a1 * hw + a2 * ody + a3 * taus[t] + 0.5 * a4 * hw * hw
+                              - a5 * hw * ody + 0.5 * a6 * ody * ody)
+                        e_end = b1 * (2 * hw) + b2 * (2 * hw) * (2 * hw)
+                        e_min = min(0.0, e_end)
+                        e_max = max(0.0, e_end)
+                        if b2 != 0.0:
+                            dv = -b1 / (2.0 * b2)
+                            if 0.0 < dv < 2 * hw:
+                                e_v = b1 * dv + b2 * dv * dv
+                                e_min = min(e_min, e_v)
+                                e_max = max(e_max, e_v)
+                        # The extremes of x(dx) itself, for the bounds.
+                        x_end = xa + (1.0 + b1) * (2 * hw) + b2 * (2 * hw) * (2 * hw)
+                        x_min = min(xa, x_end)
+                        x_max = max(xa, x_end)
+                        if b2 != 0.0:
+                            dv = -(1.0 + b1) / (2.0 * b2)
+                            if 0.0 < dv < 2 * hw:
+                                x_v = xa + (1.0 + b1) * dv + b2 * dv * dv
+                                x_min = min(x_min, x_v)
+                                x_max = max(x_max, x_v)
+                        if x_min < lo or np.floor(x_max) + hi > W - 1 or not (x_min == x_min and x_max == x_max):
                             bad = True
                             break
                         r0 = 0.0
                         r1 = 0.0
+                        r2 = 0.0
                         crow = right_coef[t, row]
                         grow = gx[t, dy]
                         frow = fn[t, dy]
-                        i0 = np.uint64(x0)
-                        if order == 3 and np.uint64(x1) == i0 + np.uint64(2 * hw) and \
+                        i0 = np.uint64(max(xa + e_min, 0.0))
+                        if order == 3 and xa + e_min >= 1.0 and np.uint64(xa + e_max) == i0 and \
                                 i0 + np.uint64(sidep + 2) <= np.uint64(W):
-                            # The usual case: the samples fall in consecutive intervals (floor(x) - dx
-                            # is monotonic in dx and equal at both ends), so the taps are contiguous
-                            # loads and the fraction is x0 - i0 + dx a1: the loop vectorises.
+                            # The usual case: floor(x(dx)) - dx is the same for every dx, so
+                            # the samples fall in consecutive intervals, the taps are
+                            # contiguous loads and the loop vectorises.
                             seg = crow[i0 - _ONE:i0 + np.uint64(sidep + 2)]
-                            f0 = x0 - np.float64(i0)
+                            f0 = xa - np.float64(i0)
                             for dx in range(sidep):
-                                f = f0 + dx * a1
+                                f = f0 + dx * (b1 + b2 * dx)
                                 g = 1.0 - f
                                 f2 = f * f
                                 f3 = f2 * f
@@ -534,12 +601,14 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                                 sg += val
                                 sgg += val * val
                                 q = grow[dx] * val
+                                o = offs[dx]
                                 r0 += q
-                                r1 += q * offs[dx]
+                                r1 += q * o
+                                r2 += q * o * o
                                 sfg += frow[dx] * val
                         else:
                             for dx in range(side):
-                                x = x0 + dx * step
+                                x = xa + dx * (1.0 + b1 + b2 * dx)
                                 if order == 3:
                                     val = _spline3_at(crow, x)
                                 else:
@@ -547,12 +616,17 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                                 sg += val
                                 sgg += val * val
                                 q = grow[dx] * val
+                                o = offs[dx]
                                 r0 += q
-                                r1 += q * offs[dx]
+                                r1 += q * o
+                                r2 += q * o * o
                                 sfg += frow[dx] * val
                         s0 += r0
                         s1 += r1
                         s2 += ody * r0
+                        s4 += 0.5 * r2
+                        s5 += ody * r1
+                        s6 += 0.5 * ody * ody * r0
                     if bad:
                         break
                     ss = sgg - sg * sg / m
@@ -560,38 +634,53 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                         bad = True
                         break
                     inv = scale[t]
-                    s0 *= inv
-                    s1 *= inv
-                    s2 *= inv
-                    sfg *= inv
                     norm = np.sqrt(ss)
                     mean = sg / m
-                    e0 = B[t, 0] - (s0 - mean * A[t, 0]) / norm
-                    grad[0] += e0
-                    grad[1] += B[t, 1] - (s1 - mean * A[t, 1]) / norm
-                    grad[2] += B[t, 2] - (s2 - mean * A[t, 2]) / norm
-                    grad[3] += taus[t] * e0
+                    sums[0] = s0
+                    sums[1] = s1
+                    sums[2] = s2
+                    sums[3] = taus[t] * s0
+                    sums[4] = s4
+                    sums[5] = s5
+                    sums[6] = s6
+                    for j in range(7):
+                        grad[j] += B[t, j] - (sums[j] * inv - mean * A[t, j]) / norm
                     # sum of r^2 with r = f - (g - mean) / norm, since sum f = 0 and sum f^2 = 1
-                    ssd += 2.0 - 2.0 * sfg / norm
+                    ssd += 2.0 - 2.0 * sfg * inv / norm
                 if bad:
                     break
-                # dp = -H^-1 grad is the template-side update; composing its inverse into
-                # the warp gives a_new = a - s dp / (1 + dp1) for the additive terms.
-                for i in range(4):
+                # dp = -H^-1 grad is the template-side update, in the active terms.
+                for i in range(7):
                     dp[i] = 0.0
                 for i in range(npar):
                     acc = 0.0
                     for j in range(npar):
-                        acc += hinv[i, j] * grad[j]
-                    dp[i] = -acc
+                        acc += hinv[i, j] * grad[act[j]]
+                    dp[act[i]] = -acc
                 s_old = 1.0 + a1
-                s_d = 1.0 + dp[1]
-                a0 = a0 - s_old * dp[0] / s_d
-                a1 = s_old / s_d - 1.0
-                a2 = a2 - s_old * dp[2] / s_d
-                a3 = a3 - s_old * dp[3] / s_d
+                if not second:
+                    # Composing the inverse of the update into the warp, exactly for the
+                    # first-order warp: a_new = a - s dp / (1 + dp1) for the additive terms.
+                    s_d = 1.0 + dp[1]
+                    a0 = a0 - s_old * dp[0] / s_d
+                    a1 = s_old / s_d - 1.0
+                    a2 = a2 - s_old * dp[2] / s_d
+                    a3 = a3 - s_old * dp[3] / s_d
+                else:
+                    # The same composition to first order in dp for the second-order warp:
+                    # u_new(x) = u(x) - (1 + du/dx) du_p(x), truncated to second order (the
+                    # fixed point, dp = 0, is the same; only the path to it is approximate).
+                    n0 = a0 - s_old * dp[0]
+                    n1 = a1 - (s_old * dp[1] + a4 * dp[0])
+                    n2 = a2 - (s_old * dp[2] + a5 * dp[0])
+                    n3 = a3 - s_old * dp[3]
+                    n4 = a4 - (s_old * dp[4] + 2.0 * a4 * dp[1])
+                    n5 = a5 - (s_old * dp[5] + a4 * dp[2] + a5 * dp[1])
+                    n6 = a6 - (s_old * dp[6] + 2.0 * a5 * dp[2])
+                    a0, a1, a2, a3, a4, a5, a6 = n0, n1, n2, n3, n4, n5, n6
                 if abs(dp[0]) < tol and abs(dp[1]) * hw < tol and abs(dp[2]) * hw < tol and \
-                        abs(dp[3]) < tol:
+                        abs(dp[3]) < tol and abs(dp[4]) * hw * hw < 2.0 * tol and \
+                        abs(dp[5]) * hw * hw < tol and abs(dp[6]) * hw * hw < 2.0 * tol:
                     converged = True
                     break
             if bad or not converged:

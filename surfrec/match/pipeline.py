@@ -36,6 +36,9 @@ class MatchParams:
     band_px : half-width of the integer search band, px (derived from
         max_excursion_mm and the rig geometry when None).
     spline_order : B-spline order of the sub-pixel interpolation (3 or 5).
+    shape_order : order of the IC-GN shape function: 1 (disparity and its two
+        slopes) or 2 (also its curvature: less bias on surfaces curved on the
+        scale of the window, about twice the random error; docs/performance.md).
     rectify_method : see surfrec.match.rectification.METHODS.
     min_score : ZNCC below which a point is invalid.
     median_threshold, median_eps : normalised median test (px for eps).
@@ -48,6 +51,7 @@ class MatchParams:
     max_excursion_mm: float = 5.0
     band_px: int | None = None
     spline_order: int = 3
+    shape_order: int = 1
     rectify_method: str = "bspline3"
     min_score: float = 0.6
     median_threshold: float = 2.0
@@ -182,7 +186,7 @@ def match_frame(lefts, rights, taus, grid_u, grid_v, centre, band, params: Match
     coef = right_coef if right_coef is not None else row_spline_coefficients(rights, params.spline_order)
     temporal = lefts.shape[0] > 1
     d, p, sigma, score, iters = refine(lefts, coef, us, vs, d_int, params.window, order=params.spline_order,
-                                       taus=taus, temporal=temporal)
+                                       taus=taus, temporal=temporal, shape_order=params.shape_order)
     shape = uu.shape
     out_d = np.full(shape, np.nan)
     out_s = np.full(shape, np.nan)
