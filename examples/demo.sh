@@ -29,8 +29,10 @@ surfrec match --rig rig.json --datum datum.h5 --left scatter/waves/left --right 
     --timestamps scatter/waves/timestamps.csv -o scatter/disparity.h5 --force -q
 surfrec heights scatter/disparity.h5 --rig rig.json --datum datum.h5 -o scatter/heights.h5 --force -q
 surfrec spectrum scatter/heights.h5 --depth 60 -o scatter/spectrum --force -q
-# The post's centre is estimated here (its datum-frame position is not known to the demo) and the
-# estimate is rough (a few mm); with a measured --centre X,Y, |R_m| comes out within 0.4% of 1.
+# The post's centre is estimated here (its datum-frame position is not known to the demo): across the
+# incident wave by a symmetric-scatterer fit (to about 0.1 mm), along it from the hole the post leaves
+# (about 1 mm off, which moves |R_m| by up to about 6%); with a measured --centre X,Y, |R_m| comes out
+# within about 1% of 1.
 surfrec modes scatter/heights.h5 --radii 50,105 --depth 60 -o scatter/modes --force -q
 echo
 echo "pictures: $(pwd)/calibration.png $(pwd)/preview.png"

@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 from surfrec.analysis.modes import (HarmonicFit, analyse_modes, estimate_centre, polar_grid, resample_polar,
-                                    whole_periods)
+                                    symmetry_misfit, whole_periods)
 from surfrec.errors import InputError
 from surfrec.waves import maccamy_fuchs_amplitude, reflection_coefficients, wavenumber
 
@@ -55,9 +55,29 @@ def test_fitted_wavenumber_and_estimated_centre(fit):
     r = analyse_modes(hf, X, Y, centre=CENTRE, radii=(25.0, 100.0), k=1.05 * K, orders=3, fit_k=True, n_boot=0)
     assert abs(r["k"] / K - 1) < 1e-5
     radii, _ = polar_grid(25.0, 100.0, 2.5, K * 100)
-    c, source = estimate_centre(amp, X, Y, K, radii)
-    assert source == "hole"
-    assert np.hypot(c[0] - CENTRE[0], c[1] - CENTRE[1]) < 0.05, c
+    c, info = estimate_centre(amp, X, Y, K, radii)
+    assert info["start"] == "hole" and info["mode"] == "line"
+    d = np.array(c) - CENTRE
+    u = np.array([np.cos(np.radians(20.0)), np.sin(np.radians(20.0))])      # the incident direction
+    # Across the incident wave the symmetric-scatterer fit pins the centre (exact field: to 1e-3 mm);
+    # along it the centre is the hole's centroid, here the post's disc sampled on the 2.5 mm grid.
+    assert abs(d @ [-u[1], u[0]]) < 1e-3, d
+    assert abs(d @ u) < 0.25, d
+    assert abs(abs(info["direction_deg"] % 180 - (20.0 + 90.0) % 180)) < 1.0, info
+
+
+def test_symmetry_misfit_is_blind_along_the_incident_wave(fit):
+    # MacCamy & Fuchs 1954: about the post's axis b_m / a_m = R_|m| (a body of revolution scatters m and -m
+    # alike). A shift across the incident wave breaks that symmetry at first order; a shift along it keeps the
+    # whole set-up mirror-symmetric about the incidence line, so the misfit stays at rounding level.
+    _, amp = fit
+    radii, theta = polar_grid(25.0, 100.0, 2.5, K * 100)
+    m_max = int(np.ceil(K * 100))
+    u = np.array([np.cos(np.radians(20.0)), np.sin(np.radians(20.0))])
+    at = [symmetry_misfit(amp, X, Y, np.array(CENTRE) + s, radii, theta, K, m_max)
+          for s in ((0, 0), 2 * u, 0.5 * np.array([-u[1], u[0]]))]
+    assert at[0] < 1e-10 and at[1] < 1e-10, at
+    assert at[2] > 1e-4, at
 
 
 def test_polar_resampling_is_accurate_and_honest_about_holes():

@@ -30,10 +30,13 @@ Steps (each a public function):
    squares over the valid points on rings with gaps.
 4. :func:`hankel_fit` -- per order m, least squares of a_m, b_m over the
    radial range; :func:`fit_wavenumber` optionally fits k.
-5. :func:`estimate_centre` -- the centre that makes the scattered part
-   (b_m - a_m) most compact in m (a compact scatterer radiates in few orders
-   about its own centre; a shifted centre spreads them by the Graf addition
-   theorem, DLMF 10.23.7, from memory).
+5. :func:`estimate_centre` -- the centre by least squares of the
+   mirror-symmetric scatterer model (b_m / a_m = b_-m / a_-m, as about the
+   axis of a body of revolution; :func:`symmetry_misfit`). It is sharp
+   across the incident wave and undetermined along it for a single plane
+   wave (the whole set-up stays mirror-symmetric about the incidence line
+   wherever on it the centre sits); that component comes from the hole the
+   post leaves in the data.
 6. :func:`analyse_modes` -- the whole analysis with block-bootstrap
    uncertainties: (a) over time, resampling blocks of frames with
    replacement (whole frames, so spatial correlation is kept; blocks at
@@ -58,7 +61,8 @@ from scipy import special
 from surfrec.errors import InputError
 
 __all__ = ["HarmonicFit", "MIN_PERIODS", "analyse_modes", "azimuthal_coefficients", "estimate_centre",
-           "fit_wavenumber", "hankel_fit", "polar_grid", "resample_polar", "whole_periods"]
+           "fit_wavenumber", "hankel_fit", "hole_centre", "line_search_centre", "polar_grid", "resample_polar",
+           "symmetry_misfit", "whole_periods"]
 
 #: Fewest whole wave periods the record must cover.
 MIN_PERIODS = 2.0
@@ -406,13 +410,60 @@ def fit_wavenumber(coefficients, radii, m, k_guess: float, *, span: float = 0.25
 # ------------------------------------------------------------------ 5. centre
 
 
-def _scatter_tail(field, x, y, centre, radii, theta, k, m_c):
-    """Share of the scattered part's energy sum |b_m - a_m|^2 in the orders |m| > m_c."""
+def symmetry_misfit(field, x, y, centre, radii, theta, k: float, m_max: int) -> float:
+    """Misfit of the mirror-symmetric scatterer model about a trial centre, mm^2.
+
+    A scatterer that is a body of revolution about a vertical axis through
+    ``centre`` (a post, a cylinder, a cone: mirror-symmetric about every
+    vertical plane through the axis) scatters each order on its own and
+    alike for m and -m: b_m = R_|m| a_m (the scattering operator is diagonal
+    in the cylindrical basis about its axis, and the mirror maps m to -m).
+    For each pair (m, -m), 1 <= m <= ``m_max``, this function fits
+    c_{+-m}(r) = a_{+-m} H2_m(k r) + b_{+-m} H1_m(k r) with the shared ratio
+    b_m / a_m = b_-m / a_-m, and returns the summed least-squares residual
+    that the shared ratio adds to the free fit. Given the free solution P (2 x 2:
+    rows m and -m, columns a, b) and the Gram matrix G of the two radial
+    functions (the same for m and -m, since H_-m = (-1)^m H_m, DLMF 10.4.2),
+    the constrained optimum is the best rank-1 approximation of P G^(1/2),
+    and the added residual is the square of its smaller singular value
+    (Eckart-Young theorem).
+
+    Parameters
+    ----------
+    field : (Ny, Nx) complex amplitude, mm, NaN where missing.
+    x (Nx,), y (Ny,) : grid, mm.
+    centre : (cx, cy) mm.
+    radii (Nr,) mm, theta (Ntheta,) rad : the polar grid.
+    k : rad/mm.
+    m_max : int
+        Highest order pair used.
+
+    Returns
+    -------
+    float, mm^2 (inf when fewer than 3 usable rings).
+    """
     polar = resample_polar(field, x, y, centre, radii, theta)
-    m, c, _ = azimuthal_coefficients(polar, theta, m_c + 6, radii, k)
-    a, b, _ = hankel_fit(c, radii, m, k)
-    s = np.abs(b - a) ** 2
-    return float(np.nansum(s[np.abs(m) > m_c]) / max(np.nansum(s), 1e-300))
+    mdec = int(math.ceil(k * radii[-1])) + 8
+    m, c, _ = azimuthal_coefficients(polar, theta, mdec, radii, k)
+    ok = np.all(np.isfinite(c), axis=1)
+    if ok.sum() < 3:
+        return math.inf
+    kr = k * np.asarray(radii, np.float64)[ok]
+    total = 0.0
+    for mm in range(1, m_max + 1):
+        d = np.stack([special.hankel2(mm, kr), special.hankel1(mm, kr)], axis=1)
+        scale = np.linalg.norm(d, axis=0)
+        if not np.all(np.isfinite(scale)) or np.any(scale == 0):
+            continue
+        d = d / scale
+        gram = d.conj().T @ d
+        sign = (-1) ** mm
+        rhs = np.stack([c[ok, mdec + mm], sign * c[ok, mdec - mm]], axis=1)
+        p = np.linalg.solve(gram, d.conj().T @ rhs).T        # rows m, -m; columns a, b (scaled)
+        w, v = np.linalg.eigh(gram)
+        root = v @ np.diag(np.sqrt(np.maximum(w, 0.0))) @ v.conj().T
+        total += float(np.linalg.svd(p @ root.T, compute_uv=False)[-1] ** 2)
+    return total
 
 
 def hole_centre(field):
@@ -433,17 +484,68 @@ def hole_centre(field):
     return ndimage.center_of_mass(bad, lab, int(np.argmax(sizes)) + 1)
 
 
-def estimate_centre(field, x, y, k: float, radii, *, guess=None):
-    """Centre of a compact scatterer from the complex amplitude field.
+#: Curvature ratio (weak / strong) of the symmetry misfit below which the weak direction counts as undetermined.
+WEAK_RATIO = 0.1
+#: Half-width of the line search across the incident direction, mm.
+LINE_HALF_WIDTH_MM = 10.0
 
-    Minimises the share of the scattered part's energy sum |b_m - a_m|^2 that
-    falls in the orders |m| > m_c = ceil(k r1 / 2) + 3: about its own centre a
-    scatterer smaller than r1 radiates almost nothing there, and a shift
-    spreads its orders (Graf's addition theorem). The minimum is shallow
-    (on an exact field, a shift of 0.1 mm changes the share by a few per
-    cent), so noise limits the precision: give --centre when it is known (Nelder-Mead from ``guess``, else from the
-    centroid of the largest interior hole of missing data -- an opaque post
-    leaves one -- else the grid centre).
+
+def _hessian_2d(cost, c, h):
+    """Central-difference Hessian (2 x 2) of cost at c with step h."""
+    e = np.eye(2) * h
+    f0 = cost(c)
+    hes = np.zeros((2, 2))
+    for i in range(2):
+        hes[i, i] = (cost(c + e[i]) - 2 * f0 + cost(c - e[i])) / h ** 2
+    hes[0, 1] = hes[1, 0] = (cost(c + e[0] + e[1]) - cost(c + e[0] - e[1]) - cost(c - e[0] + e[1])
+                             + cost(c - e[0] - e[1])) / (4 * h ** 2)
+    return hes
+
+
+def line_search_centre(cost, start, direction, *, half_width: float = LINE_HALF_WIDTH_MM, xtol: float = 1e-3):
+    """Minimum of cost on the line start + t direction, |t| <= half_width (bounded Brent), as (cx, cy) mm."""
+    from scipy.optimize import minimize_scalar
+
+    start = np.asarray(start, np.float64)
+    u = np.asarray(direction, np.float64)
+    res = minimize_scalar(lambda t: cost(start + t * u), bounds=(-half_width, half_width), method="bounded",
+                          options={"xatol": xtol})
+    c = start + res.x * u
+    return float(c[0]), float(c[1])
+
+
+def estimate_centre(field, x, y, k: float, radii, *, guess=None):
+    """Centre of a mirror-symmetric scatterer from the complex amplitude field, by least squares.
+
+    The centre minimises :func:`symmetry_misfit`: the residual of the
+    incoming + outgoing Hankel model when each pair of orders m, -m shares
+    one reflection coefficient, as it does about the axis of a body of
+    revolution (a post, a cylinder; not a rotating or asymmetric body, for
+    which this estimate does not apply -- give ``--centre``). A wrong centre
+    mixes orders m and m +- 1 by about k delta / 2 (Graf's addition theorem,
+    DLMF 10.23.7, from memory) and breaks the m / -m symmetry at first
+    order in the shift, so the minimum is sharp across the incident wave.
+
+    Along the incident wave it is not: a single plane wave and a symmetric
+    scatterer are together mirror-symmetric about the incidence line through
+    the scatterer, and any centre on that line keeps that symmetry, so the
+    field leaves the centre's component along the incident direction
+    undetermined (up to the weak compactness of the scattered orders, which
+    noise at 1e-3 of the wave amplitude already hides). The estimate
+    therefore works in the directions the field determines:
+
+    1. start from ``guess``, else the centroid of the largest interior hole
+       of missing data (an opaque post leaves one; the occlusion behind its
+       top biases it along the camera baseline, by about a millimetre in the
+       synthetic sessions), else the grid centre;
+    2. the Hessian of the misfit there (central differences, one grid step)
+       gives the well-determined direction (largest curvature) and the
+       curvature ratio;
+    3. if the ratio exceeds :data:`WEAK_RATIO` (an incident field with more
+       than one direction, such as tank-wall reflections), Nelder-Mead in 2-D;
+       otherwise a bounded line search along the well-determined direction
+       through the start (repeated once from the new point), and the
+       component along the incident direction stays that of the start.
 
     Parameters
     ----------
@@ -455,7 +557,12 @@ def estimate_centre(field, x, y, k: float, radii, *, guess=None):
 
     Returns
     -------
-    (cx, cy) mm and the source of the starting point ("given", "hole", "grid centre").
+    centre : (cx, cy) mm.
+    info : dict
+        ``start`` ("given", "hole", "grid centre"), ``start_mm``, ``mode``
+        ("line" or "2-D"), ``direction`` (unit vector of the well-determined
+        direction), ``direction_deg``, ``curvature_ratio``, ``misfit``, and
+        ``cost`` (the misfit as a function of a centre, for re-estimation).
     """
     from scipy.optimize import minimize
 
@@ -470,20 +577,40 @@ def estimate_centre(field, x, y, k: float, radii, *, guess=None):
         else:
             guess = (0.5 * (x[0] + x[-1]), 0.5 * (y[0] + y[-1]))
             source = "grid centre"
-    m_c = int(math.ceil(k * radii[0] / 2)) + 3
+    step = float(x[1] - x[0])
     _, theta = polar_grid(radii[0], radii[-1], radii[1] - radii[0], k * radii[-1])
+    m_max = int(math.ceil(k * radii[-1]))
 
     def cost(c):
-        try:
-            return _scatter_tail(field, x, y, c, radii, theta, k, m_c)
-        except InputError:
-            return 1e6
+        return symmetry_misfit(field, x, y, c, radii, theta, k, m_max)
 
-    step = max(x[1] - x[0], 1.0)
-    res = minimize(cost, np.asarray(guess, float), method="Nelder-Mead",
-                   options={"xatol": 1e-3, "fatol": 1e-9, "maxiter": 300,
-                            "initial_simplex": [guess, (guess[0] + step, guess[1]), (guess[0], guess[1] + step)]})
-    return (float(res.x[0]), float(res.x[1])), source
+    c = np.asarray(guess, np.float64)
+    hes = _hessian_2d(cost, c, step)
+    w, v = np.linalg.eigh(hes)
+    ratio = float(w[0] / w[1]) if w[1] > 0 else 0.0
+    if not np.all(np.isfinite(hes)):
+        raise InputError("the centre cannot be estimated: the rings about the start point leave the data; give "
+                         "--centre")
+    if ratio > WEAK_RATIO:
+        res = minimize(cost, c, method="Nelder-Mead",
+                       options={"xatol": 1e-3, "fatol": 1e-15, "maxiter": 300,
+                                "initial_simplex": [c, c + (step, 0.0), c + (0.0, step)]})
+        centre, mode = (float(res.x[0]), float(res.x[1])), "2-D"
+    else:
+        u = v[:, 1]
+        centre = line_search_centre(cost, c, u)
+        hes = _hessian_2d(cost, np.asarray(centre), step)
+        w, v = np.linalg.eigh(hes)
+        u = v[:, 1]
+        # The second pass moves only across the incident direction, through the first result.
+        centre = line_search_centre(cost, centre, u, half_width=3 * step)
+        ratio = float(w[0] / w[1]) if w[1] > 0 else 0.0
+        mode = "line"
+    u = v[:, 1] * (1 if v[0, 1] >= 0 else -1)
+    return centre, {"start": source, "start_mm": (float(guess[0]), float(guess[1])), "mode": mode,
+                    "direction": (float(u[0]), float(u[1])),
+                    "direction_deg": float(np.degrees(np.arctan2(u[1], u[0]))), "curvature_ratio": ratio,
+                    "misfit": float(cost(np.asarray(centre))), "m_max": m_max}
 
 
 # ------------------------------------------------------------------ 6. the analysis with uncertainties
@@ -500,7 +627,7 @@ def _circular_std_deg(z):
 
 
 def analyse_modes(fit: HarmonicFit, x, y, *, centre, radii, k: float, orders: int, fit_k: bool = False,
-                  n_boot: int = 200, seed: int = 0):
+                  n_boot: int = 200, seed: int = 0, centre_direction=None, centre_m_max: int | None = None):
     """Incoming/outgoing amplitudes, R_m and block-bootstrap 1-sigma for |m| <= orders.
 
     Parameters
@@ -520,6 +647,16 @@ def analyse_modes(fit: HarmonicFit, x, y, *, centre, radii, k: float, orders: in
         Replicates of each bootstrap.
     seed : int
         Seed of the bootstrap draws.
+    centre_direction : (2,) unit vector, optional
+        When the centre was estimated (:func:`estimate_centre`): its
+        well-determined direction. Each time-bootstrap replicate then
+        re-estimates the centre along it (a line search of
+        :func:`symmetry_misfit` through ``centre``, within three grid steps),
+        so the centre's error enters the time 1-sigma; the component along
+        the incident direction stays fixed. Default: the centre is held
+        fixed.
+    centre_m_max : int, optional
+        Highest order pair of that misfit (default ceil(k r2)).
 
     Returns
     -------
@@ -529,7 +666,9 @@ def analyse_modes(fit: HarmonicFit, x, y, *, centre, radii, k: float, orders: in
     ``R_abs``, ``R_phase_deg``, ``in_abs``, ``out_abs``), ``k_sigma`` (with
     fit_k), ``radii_used``, ``ring_missing`` (share per ring),
     ``time_blocks``, ``n_boot``, ``residual_rel`` (the model's relative
-    misfit per order).
+    misfit per order), ``centre_samples`` ((n, 2) mm, the re-estimated
+    centres of the time replicates, or None) and ``centre_sigma_mm`` (their
+    1-sigma along ``centre_direction``, or None).
     """
     x = np.asarray(x, np.float64)
     y = np.asarray(y, np.float64)
@@ -540,9 +679,9 @@ def analyse_modes(fit: HarmonicFit, x, y, *, centre, radii, k: float, orders: in
     m_dec = int(math.ceil((1.3 if fit_k else 1.0) * k * r2)) + 8
     rng = np.random.default_rng(seed)
 
-    def solve(field, kk=None, polar=None):
+    def solve(field, kk=None, polar=None, at=None):
         if polar is None:
-            polar = resample_polar(field.reshape(shape), x, y, centre, radii_g, theta)
+            polar = resample_polar(field.reshape(shape), x, y, centre if at is None else at, radii_g, theta)
         mm, c, miss = azimuthal_coefficients(polar, theta, m_dec, radii_g, k)
         if kk is None:
             kk = fit_wavenumber(c[:, m_dec - orders:m_dec + orders + 1], radii_g,
@@ -558,10 +697,21 @@ def analyse_modes(fit: HarmonicFit, x, y, *, centre, radii, k: float, orders: in
     norm = np.sum(np.abs(c[ok_rings]) ** 2, 0)
 
     # (a) Time: blocks of frames drawn with replacement.
-    rt, kt = [], []
+    # With an estimated centre, each replicate re-estimates it across the incident direction.
+    rt, kt, ct = [], [], []
+    if centre_direction is not None:
+        m_sym = int(math.ceil(k * r2)) if centre_m_max is None else int(centre_m_max)
+        _, theta_c = polar_grid(r1, r2, step, k * r2)
     for _ in range(n_boot if fit.n_blocks >= 2 else 0):
         w = rng.multinomial(fit.n_blocks, np.full(fit.n_blocks, 1.0 / fit.n_blocks))
-        k_b, _, ab, bb, *_ = solve(fit.amplitude(w))
+        amp_b = fit.amplitude(w)
+        c_b = None
+        if centre_direction is not None:
+            field_b = amp_b.reshape(shape)
+            c_b = line_search_centre(lambda c: symmetry_misfit(field_b, x, y, c, radii_g, theta_c, k, m_sym),
+                                     centre, centre_direction, half_width=3 * step, xtol=2e-3)
+            ct.append(c_b)
+        k_b, _, ab, bb, *_ = solve(amp_b, at=c_b)
         rt.append((bb / ab)[sel])
         kt.append(k_b)
     rt = np.array(rt).reshape(-1, 2 * orders + 1)
@@ -608,4 +758,6 @@ def analyse_modes(fit: HarmonicFit, x, y, *, centre, radii, k: float, orders: in
             "radii_used": radii_g, "ring_missing": miss, "time_blocks": fit.n_blocks,
             "time_block_frames": fit.block_frames, "n_boot": n_boot, "azimuth_sectors": N_SECTORS,
             "residual_rel": (res / np.where(norm > 0, norm, 1.0))[sel], "polar": polar, "theta": theta,
-            "m_decomposition": m_dec}
+            "m_decomposition": m_dec, "centre_samples": np.array(ct) if ct else None,
+            "centre_sigma_mm": (float(np.std(np.array(ct) @ np.asarray(centre_direction), ddof=1))
+                                if len(ct) > 1 else None)}

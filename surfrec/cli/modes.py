@@ -76,7 +76,16 @@ def command(heights, output, radii, depth, fit_k, centre, frequency, orders, n_b
     residual in wedges of 1/16 of the circle); the larger of the two is
     quoted. Neighbouring nodes share most of their correlation windows, so a
     plain least-squares covariance would understate the error several-fold.
-    The centre is held fixed in the bootstrap.
+    A given --centre is held fixed in the bootstrap.
+
+    \b
+    Centre estimate (no --centre): least squares of the model of a
+    mirror-symmetric scatterer (a body of revolution: b_m/a_m = b_-m/a_-m),
+    which fixes the centre across the incident wave (and re-estimates it in
+    every time replicate). Along a single incident plane wave the field
+    cannot fix it (the set-up stays mirror-symmetric about the incidence
+    line); that component is the centroid of the hole the post leaves in
+    the data, biased by occlusion. Give --centre when the position is known.
 
     \b
     OUTPUT/modes.csv        per order: incoming, outgoing (mm, deg), R_m and 1-sigma
@@ -163,17 +172,26 @@ def command(heights, output, radii, depth, fit_k, centre, frequency, orders, n_b
                              f"largest radius that fits is {max(room, 0):.4g} mm")
 
     centre_source = "given"
+    centre_info = None
     if centre is None:
         radii_g, _ = polar_grid(r1, r2, step, k0 * r2)
-        centre, start_from = estimate_centre(amp, x, y, k0, radii_g)
+        centre, centre_info = estimate_centre(amp, x, y, k0, radii_g)
         if fit_k:
             # The centre estimate needs k and the k fit needs the centre: alternate twice.
             for _ in range(2):
                 check_ring(centre)
                 k0 = analyse_modes(fit, x, y, centre=centre, radii=(r1, r2), k=k0, orders=orders, fit_k=True,
                                    n_boot=0)["k"]
-                centre, _ = estimate_centre(amp, x, y, k0, radii_g, guess=centre)
-        centre_source = f"estimated (compact scattered field, start from the {start_from})"
+                centre, centre_info = estimate_centre(amp, x, y, k0, radii_g, guess=centre_info["start_mm"])
+        if centre_info["mode"] == "line":
+            centre_source = (f"estimated (mirror-symmetric scatterer fit) across the incident wave, along "
+                             f"{centre_info['direction_deg']:.1f} deg; the component along the incident wave is "
+                             f"the {centre_info['start']}'s, which the field does not determine")
+            log.warning("warning: the centre is estimated across the incident wave only; along it, it is the %s "
+                        "centroid (biased by occlusion, about 1 mm in the synthetic sessions, which moves |R_m| "
+                        "by several %%): give --centre when the post's position is known", centre_info["start"])
+        else:
+            centre_source = f"estimated (mirror-symmetric scatterer fit, 2-D, from the {centre_info['start']})"
         log.info("centre estimated: (%.3f, %.3f) mm", *centre)
         if not (x[0] <= centre[0] <= x[-1] and y[0] <= centre[1] <= y[-1]):
             raise InputError(f"the estimated centre ({centre[0]:.3g}, {centre[1]:.3g}) mm lies outside the field; "
@@ -181,7 +199,8 @@ def command(heights, output, radii, depth, fit_k, centre, frequency, orders, n_b
     check_ring(centre)
 
     res = analyse_modes(fit, x, y, centre=centre, radii=(r1, r2), k=k0, orders=orders, fit_k=fit_k, n_boot=n_boot,
-                        seed=seed)
+                        seed=seed, centre_direction=None if centre_info is None else centre_info["direction"],
+                        centre_m_max=None if centre_info is None else centre_info["m_max"])
     miss = res["ring_missing"]
     used_rings = int(np.count_nonzero(miss <= MAX_RING_MISSING))
     if used_rings < miss.size:
@@ -212,13 +231,21 @@ def command(heights, output, radii, depth, fit_k, centre, frequency, orders, n_b
               f"dispersion relation at depth {depth:g} mm",
               "wavenumber_theory_rad_per_mm": k_theory, "wavenumber_sigma_rad_per_mm": res["k_sigma"],
               "centre_source": centre_source,
+              "centre_estimate": None if centre_info is None else {
+                  "start": centre_info["start"], "start_mm": list(centre_info["start_mm"]),
+                  "mode": centre_info["mode"], "determined_direction_deg": centre_info["direction_deg"],
+                  "curvature_ratio": centre_info["curvature_ratio"], "misfit_mm2": centre_info["misfit"],
+                  "sigma_mm_across": res["centre_sigma_mm"]},
               "frames": {"start": start, "used": n_use, "periods": periods, "dt_s": dt, "gap_note": gap_note},
               "convention": "elevation Re[A exp(-i omega t)]; A = sum_m (a_m H2_m(kr) + b_m H1_m(kr)) exp(i m theta); "
                             "H1 outgoing, H2 incoming; R_m = outgoing / incoming; amplitudes in mm as "
                             "[magnitude, phase_deg]",
               "uncertainty": {"method": "block bootstrap over time (blocks of whole frames) and over azimuth "
                                         "(circular block bootstrap of the residual on the polar grid); the larger "
-                                        "1-sigma of the two is quoted; centre held fixed",
+                                        "1-sigma of the two is quoted; " + (
+                                            "centre held fixed (given)" if centre_info is None else
+                                            "centre re-estimated in each time replicate across the incident wave "
+                                            "(held fixed along it, and in the azimuthal bootstrap)"),
                               "replicates": n_boot, "time_blocks": res["time_blocks"],
                               "time_block_frames": res["time_block_frames"],
                               "azimuth_sectors": res["azimuth_sectors"]},
@@ -260,7 +287,10 @@ def _text(r, out):
              f"{f['periods']:.4g} periods",
              f"wavenumber {r['wavenumber_rad_per_mm']:.6g} rad/mm ({r['wavenumber_source']}"
              + (f", sigma {r['wavenumber_sigma_rad_per_mm']:.2g}" if r["wavenumber_sigma_rad_per_mm"] else "") + ")",
-             f"centre ({r['centre_mm'][0]:.3f}, {r['centre_mm'][1]:.3f}) mm ({r['centre_source']}); radii "
+             f"centre ({r['centre_mm'][0]:.3f}, {r['centre_mm'][1]:.3f}) mm"
+             + (f" ±{r['centre_estimate']['sigma_mm_across']:.3f} mm across the incident wave"
+                if r.get("centre_estimate") and r["centre_estimate"]["sigma_mm_across"] else "")
+             + f" ({r['centre_source']}); radii "
              f"{r['radii_mm'][0]:g} to {r['radii_mm'][1]:g} mm, {r['rings']['used']} rings",
              "convention: exp(-i omega t), H1 outgoing, H2 incoming, R_m = outgoing / incoming",
              "    m   incoming (mm, deg)   outgoing (mm, deg)      |R_m|   ±1σ      arg R_m (deg)  ±1σ"]
