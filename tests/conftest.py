@@ -61,25 +61,41 @@ def make_true_rig():
     return true_rig
 
 
-@pytest.fixture(scope="session")
-def scatter_heights(quick_session, tmp_path_factory):
-    """heights.h5 reconstructed from the rendered quick ``scatter`` session (datum, match, heights with the
-    session's exact rig), and the session folder: ``(heights_path, session_path)``. Built once per run."""
-    from surfrec.io.rigfile import write_rig
-
-    s = quick_session("scatter")
-    work = tmp_path_factory.mktemp("scatter-heights")
-    rig = work / "rig.json"
-    write_rig(true_rig(s / "truth.h5"), rig)
-
+def _reconstruct(session, work, rig_path):
+    """datum, match and heights of a rendered session with the given rig; returns heights.h5."""
     def run(*args):
         res = subprocess.run([sys.executable, "-m", "surfrec.cli.main", *map(str, args), "-q"],
                              capture_output=True, text=True)
         assert res.returncode == 0, res.stderr
 
-    run("datum", "--rig", rig, "--left", s / "still" / "left", "--right", s / "still" / "right",
+    s = session
+    run("datum", "--rig", rig_path, "--left", s / "still" / "left", "--right", s / "still" / "right",
         "-o", work / "datum.h5")
-    run("match", "--rig", rig, "--datum", work / "datum.h5", "--left", s / "waves" / "left", "--right",
+    run("match", "--rig", rig_path, "--datum", work / "datum.h5", "--left", s / "waves" / "left", "--right",
         s / "waves" / "right", "--timestamps", s / "waves" / "timestamps.csv", "-o", work / "disparity.h5")
-    run("heights", work / "disparity.h5", "--rig", rig, "--datum", work / "datum.h5", "-o", work / "heights.h5")
-    return work / "heights.h5", s
+    run("heights", work / "disparity.h5", "--rig", rig_path, "--datum", work / "datum.h5", "-o",
+        work / "heights.h5")
+    return work / "heights.h5"
+
+
+def _true_rig_heights(quick_session, tmp_path_factory, scenario):
+    from surfrec.io.rigfile import write_rig
+
+    s = quick_session(scenario)
+    work = tmp_path_factory.mktemp(f"{scenario}-heights")
+    rig = work / "rig.json"
+    write_rig(true_rig(s / "truth.h5"), rig)
+    return _reconstruct(s, work, rig), s
+
+
+@pytest.fixture(scope="session")
+def scatter_heights(quick_session, tmp_path_factory):
+    """heights.h5 reconstructed from the rendered quick ``scatter`` session (datum, match, heights with the
+    session's exact rig), and the session folder: ``(heights_path, session_path)``. Built once per run."""
+    return _true_rig_heights(quick_session, tmp_path_factory, "scatter")
+
+
+@pytest.fixture(scope="session")
+def plane_heights(quick_session, tmp_path_factory):
+    """The same for the rendered quick ``plane`` session: ``(heights_path, session_path)``. Built once per run."""
+    return _true_rig_heights(quick_session, tmp_path_factory, "plane")

@@ -3,7 +3,9 @@
 References: scipy.signal.welch for the Welch spectrum; the linear
 capillary-gravity dispersion relation (Lamb, Hydrodynamics; Lighthill, Waves
 in Fluids) for the measured wavenumber, within 1% on the rendered quick
-scatter session (its incident plane wave; the scattered waves share its |k|).
+plane session (a plain plane wave, the check issue 7 asks for) and on the
+rendered quick scatter session (its incident plane wave; the scattered waves
+share its |k|).
 """
 
 import csv
@@ -111,3 +113,24 @@ def test_rendered_scatter_session_follows_dispersion(scatter_heights, tmp_path):
     peak = _rows(tmp_path / "s" / "peaks.csv")[0]
     assert abs(float(peak["frequency_hz"]) - 5.0) < 0.05
     assert abs(float(peak["relative_error"])) < 0.01, peak
+
+
+def test_rendered_plane_session_follows_dispersion(plane_heights, tmp_path):
+    # The quick plane session: a 4 Hz plane wave on water 60 mm deep (its truth.h5), rendered and reconstructed
+    # through datum, match and heights. Measured |k| at the wave frequency within 1% of the linear
+    # capillary-gravity relation (Lamb, Hydrodynamics; Lighthill, Waves in Fluids) with the handbook g and sigma.
+    from surfrec.io.truthfile import read_truth
+    from surfrec.waves import water
+
+    heights, session = plane_heights
+    t = read_truth(session / "truth.h5")
+    surface = t["groups"]["waves"]["surface"]
+    surface = json.loads(surface) if isinstance(surface, str) else surface
+    f, depth = surface["frequency_hz"], t["water"]["depth_mm"]
+    res = run("spectrum", heights, "-o", tmp_path / "s", "--depth", depth)
+    assert res.returncode == 0, res.stderr
+    peak = _rows(tmp_path / "s" / "peaks.csv")[0]
+    assert abs(float(peak["frequency_hz"]) - f) < 0.02 * f
+    k_theory = float(wavenumber(f, depth, gravity=water.STANDARD_GRAVITY, surface_tension=water.SURFACE_TENSION))
+    k = float(peak["wavenumber_measured_rad_per_mm"])
+    assert abs(k / k_theory - 1) < 0.01, (k, k_theory, peak)

@@ -14,6 +14,7 @@ log = logging.getLogger("surfrec")
 SCENARIO_HELP = {
     "waves": "plane 5 Hz wave of 1.0 mm stepping to 1.1 mm, over a stationary dip (the default)",
     "scatter": "plane waves scattered by a surface-piercing post, whole wave periods",
+    "plane": "a plain 4 Hz plane wave over whole wave periods, for the dispersion check",
     "ripples": "circular ripples from a point source, 12-bit data in 16-bit files",
     "moved": "the waves rig after the right camera turned 0.2 degrees: for check-rig and re-posing",
 }

@@ -123,6 +123,14 @@ def scenario_markdown(sc) -> str:
         "--timestamps waves/timestamps.csv -o disparity.h5",
         "surfrec heights disparity.h5 --rig rig.json --datum datum.h5 -o heights.h5",
         "surfrec assess heights.h5 --truth truth.h5",
+    ]
+    if "periods" in sc.notes:
+        # Whole wave periods: the run serves the wave analysis too.
+        depth = sc.water["depth_mm"]
+        lines.append(f"surfrec spectrum heights.h5 --depth {depth:g} -o spectrum")
+        if sc.post is not None:
+            lines.append(f"surfrec modes heights.h5 --radii 50,105 --depth {depth:g} -o modes")
+    lines += [
         "```",
         "",
         "`surfrec inspect truth.h5` summarises the ground truth.",

@@ -3,7 +3,7 @@
 Public API (all lengths mm, times s, pixels px; world/tank frame with z up
 and the still water at z = 0):
 
-* :func:`build_scenario` — a named scenario ("waves", "scatter", "ripples",
+* :func:`build_scenario` — a named scenario ("waves", "scatter", "plane", "ripples",
   "moved") as plain data: rigs, lighting, sensor, frame groups;
 * :func:`render_session` — render every frame pair of a scenario into a sink;
 * :class:`Camera`, :class:`Projector`, :func:`look_at`, :func:`stereo_from_cameras`

@@ -24,7 +24,7 @@ from surfrec.synth.cameras import Camera, Projector, look_at, rotation_about_axi
 from surfrec.synth.render import Lighting, Post, SensorModel
 from surfrec.waves import water
 
-SCENARIOS = ("waves", "scatter", "ripples", "moved")
+SCENARIOS = ("waves", "scatter", "plane", "ripples", "moved")
 
 TANK = {"length_mm": 1200.0, "width_mm": 800.0, "depth_mm": 60.0}
 
@@ -245,7 +245,7 @@ def build_scenario(name: str = "waves", *, quick: bool = False, seed: int = 0) -
 
     Parameters
     ----------
-    name : "waves" (default), "scatter", "ripples" or "moved".
+    name : "waves" (default), "scatter", "plane", "ripples" or "moved".
     quick : shrink to 512x384 px and a few frames (for tests).
     seed : seeds the target poses, speckle patterns and sensor noise.
     """
@@ -298,6 +298,19 @@ def build_scenario(name: str = "waves", *, quick: bool = False, seed: int = 0) -
                 f"the surface near the field centre; {periods} whole wave periods are recorded at {fps_s:g} "
                 "frames/s. The post is matte black: no speckle on it, and it shades the water behind it "
                 "from the projector.")
+    elif name == "plane":
+        # A plain wave for the dispersion check: whole periods, as in "scatter", and nothing else on the water.
+        f = 4.0
+        periods = 2 if quick else 3
+        fps_p = 50.0 if quick else 100.0
+        n = int(round(periods * fps_p / f))
+        times = np.arange(n) / fps_p
+        surface = sf.PlaneWave(amplitude_mm=1.0, frequency_hz=f, depth_mm=depth, direction_deg=20.0, phase_deg=30.0)
+        groups.append(FrameGroup("waves", "speckle", "rig", surface=surface, times=times, fps=fps_p, group_id=3))
+        notes["periods"] = periods
+        desc = (f"A {f:g} Hz plane capillary-gravity wave of 1.0 mm amplitude runs across the field at 20 degrees "
+                f"to the tank axis, nothing else on the water; {periods} whole wave periods are recorded at "
+                f"{fps_p:g} frames/s (for the dispersion check of `surfrec spectrum`).")
     elif name == "ripples":
         n = 6 if quick else 24
         times = np.arange(n) / fps
