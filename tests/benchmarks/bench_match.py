@@ -9,7 +9,9 @@ Both matchers get the true rig (so calibration error is left out) and the
 band centre comes from the true still-water disparity, as a datum would give
 it. Errors are against the exact truth disparities at the grid points
 (surfrec.synth.truthdisparity, computed from the rendered surface). Time per
-frame pair includes rectifying both frames on both sides: for StereoSGBM by
+frame pair (wall clock and CPU time of the process, both as medians; with
+all threads and with one compute thread each) includes rectifying both
+frames on both sides: for StereoSGBM by
 cv2.remap (bilinear) to 8 bits, as it needs. StereoSGBM settings (issue 4):
 blockSize 5, P1 = 8*5^2, P2 = 32*5^2, uniquenessRatio 10, MODE_SGBM,
 numDisparities the smallest multiple of 16 covering the scene's disparity
@@ -29,6 +31,7 @@ import statistics
 import time
 
 import cv2
+import numba
 import numpy as np
 
 from surfrec.io.images import open_frames
@@ -60,20 +63,23 @@ def _ours(session, group, frames, params, rig, left, right, tr, timing=True):
     g = tr["groups"][group]
     surf = surface_from_dict(g["surface"])
     errs, sig, times, valid = [], [], [], []
+    cpu = []
     half = params.time_window // 2
     for i in frames:
         idx = [j for j in range(i - half, i + half + 1) if 0 <= j < len(lf)]
         raw = [(lf[j], rf[j]) for j in idx]
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.process_time()
         ls = np.stack([fr.left(a) for a, _ in raw])
         rs = np.stack([fr.right(b) for _, b in raw])
         taus = np.array(idx, float) - i
         out = match_frame(ls, rs, taus, gu, gv, ref, band, params)
         times.append(time.perf_counter() - t0)
+        cpu.append(time.process_time() - c0)
         dt, _ = true_disparity(left, right, rig.rectification, surf, float(g["time"][i]), uu, vv)
         errs.append(out["disparity"] - dt)
         sig.append(out["disparity_sigma"])
         valid.append(np.isfinite(out["disparity"]).mean())
+    _ours.cpu = cpu
     return np.array(errs), np.array(sig), times, valid, (uu, vv, ref)
 
 
@@ -87,20 +93,22 @@ def _sgbm(session, group, frames, rig, left, right, tr, uu, vv, ref):
     num = int(np.ceil((dmax + 16 - min_disp) / 16.0)) * 16
     sgbm = cv2.StereoSGBM_create(minDisparity=min_disp, numDisparities=num, blockSize=5, P1=8 * 25, P2=32 * 25,
                                  uniquenessRatio=10, mode=cv2.STEREO_SGBM_MODE_SGBM)
-    errs, times = [], []
+    errs, times, cpu = [], [], []
     mx_l, my_l = fr.maps["left"]
     mx_r, my_r = fr.maps["right"]
     for i in frames:
         a, b = lf.read_raw(i), rf.read_raw(i)
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.process_time()
         la = cv2.remap(a, mx_l, my_l, cv2.INTER_LINEAR)
         rb = cv2.remap(b, mx_r, my_r, cv2.INTER_LINEAR)
         disp = sgbm.compute(la, rb).astype(np.float32) / 16.0
         times.append(time.perf_counter() - t0)
+        cpu.append(time.process_time() - c0)
         d = disp[vv, uu]
         d[d < min_disp] = np.nan
         dt, _ = true_disparity(left, right, rig.rectification, surf, float(g["time"][i]), uu, vv)
         errs.append(d - dt)
+    _sgbm.cpu = cpu
     return np.array(errs), times, (min_disp, num)
 
 
@@ -121,19 +129,35 @@ def main():
           f"({cv2.getNumThreads()} threads)\n")
 
     p = MatchParams()
-    e_ours, s_ours, t_ours, v_ours, (uu, vv, ref) = _ours(args.session, "waves", frames, p, rig, left, right, tr)
-    e_sg, t_sg, (md, nd) = _sgbm(args.session, "waves", frames, rig, left, right, tr, uu, vv, ref)
-    r_o, b_o, p_o = _stats(e_ours)
-    r_s, b_s, p_s = _stats(e_sg)
-    print(f"### Wave frames ({len(frames)} frame pairs, grid {uu.shape[1]}x{uu.shape[0]} at spacing {p.spacing} px)\n")
-    print("| matcher | s per frame pair (median) | valid | RMS error px | bias px | 95% abs error px |")
-    print("|---|---|---|---|---|---|")
-    print(f"| surfrec (window {p.window}, B-spline {p.spline_order}, rectify {p.rectify_method}) | "
-          f"{statistics.median(t_ours):.3f} | {np.mean(v_ours):.3f} | {r_o:.4f} | {b_o:+.4f} | {p_o:.4f} |")
-    print(f"| StereoSGBM (minDisparity {md}, numDisparities {nd}) | {statistics.median(t_sg):.3f} | "
-          f"{np.isfinite(e_sg).mean():.3f} | {r_s:.4f} | {b_s:+.4f} | {p_s:.4f} |")
-    print(f"\nratios: RMS error surfrec/SGBM = {r_o / r_s:.3f}; time surfrec/SGBM = "
-          f"{statistics.median(t_ours) / statistics.median(t_sg):.2f}\n")
+    for threads in (None, 1):
+        if threads:
+            # One compute thread each: what a worker of `surfrec run` gets, and the fair per-core figure.
+            numba.set_num_threads(1)
+            cv2.setNumThreads(1)
+        label = "one thread each" if threads else f"all threads ({numba.get_num_threads()} numba, "\
+            f"{cv2.getNumThreads()} OpenCV)"
+        e_ours, s_ours, t_ours, v_ours, (uu, vv, ref) = _ours(args.session, "waves", frames, p, rig, left, right, tr)
+        c_ours = _ours.cpu
+        e_sg, t_sg, (md, nd) = _sgbm(args.session, "waves", frames, rig, left, right, tr, uu, vv, ref)
+        c_sg = _sgbm.cpu
+        r_o, b_o, p_o = _stats(e_ours)
+        r_s, b_s, p_s = _stats(e_sg)
+        print(f"### Wave frames, {label} ({len(frames)} frame pairs, grid {uu.shape[1]}x{uu.shape[0]} "
+              f"at spacing {p.spacing} px)\n")
+        print("| matcher | wall s per frame pair (median) | CPU s per frame pair (median) | valid | RMS error px "
+              "| bias px | 95% abs error px |")
+        print("|---|---|---|---|---|---|---|")
+        print(f"| surfrec (window {p.window}, B-spline {p.spline_order}, rectify {p.rectify_method}) | "
+              f"{statistics.median(t_ours):.3f} | {statistics.median(c_ours):.3f} | {np.mean(v_ours):.3f} | "
+              f"{r_o:.4f} | {b_o:+.4f} | {p_o:.4f} |")
+        print(f"| StereoSGBM (minDisparity {md}, numDisparities {nd}) | {statistics.median(t_sg):.3f} | "
+              f"{statistics.median(c_sg):.3f} | {np.isfinite(e_sg).mean():.3f} | {r_s:.4f} | {b_s:+.4f} | "
+              f"{p_s:.4f} |")
+        print(f"\nratios: RMS error surfrec/SGBM = {r_o / r_s:.3f}; wall time surfrec/SGBM = "
+              f"{statistics.median(t_ours) / statistics.median(t_sg):.2f}; CPU time surfrec/SGBM = "
+              f"{statistics.median(c_ours) / statistics.median(c_sg):.2f}\n")
+    numba.set_num_threads(numba.config.NUMBA_NUM_THREADS)
+    cv2.setNumThreads(-1)
 
     # Rectification resampling, on still water (no surface-shape error).
     ns = len(tr["groups"]["still"]["time"])
@@ -158,7 +182,7 @@ def main():
           f"median estimated sigma / observed RMS = {np.nanmedian(np.nanmean(s, axis=0) / observed):.2f}\n")
 
     print("### Time per frame pair against settings (wave frames, median)\n")
-    print("| spacing | window | time window | s per frame pair | RMS error px |")
+    print("| spacing | window | time window | wall s per frame pair | RMS error px |")
     print("|---|---|---|---|---|")
     for spacing, window, tw in ((4, 15, 1), (8, 15, 1), (2, 15, 1), (4, 11, 1), (4, 21, 1), (4, 11, 3), (4, 9, 5)):
         pm = MatchParams(spacing=spacing, window=window, time_window=tw)
