@@ -51,10 +51,15 @@ def _odd(ctx, param, value):
 @click.option("--rectify", "rectify_method", type=click.Choice(["bspline3", "bspline5", "cubic", "lanczos4", "linear"]),
               default="bspline3", show_default=True,
               help="Resampling used to rectify the frames (see docs/performance.md for the error each adds).")
+@click.option("--shape-order", type=click.IntRange(1, 2), default=1, show_default=True, metavar="1|2",
+              help="Shape function of the sub-pixel refinement: 1 (disparity and its slopes) or 2 (also its "
+                   "curvature). Use 2, with a window about 1.4 times larger, when the waves are short compared "
+                   "with the window: it removes the curvature bias and keeps the 1-sigma honest, at about twice "
+                   "the random error per window (docs/performance.md).")
 @force_option
 @verbosity
 def command(rig_path, datum_path, left, right, output, fps, timestamps, window, spacing, time_window,
-            max_excursion, mask_path, start, stop, step, rectify_method, force):
+            max_excursion, mask_path, start, stop, step, rectify_method, shape_order, force):
     """Match the speckle between the two views of every frame pair.
 
     Rectifies each frame with maps computed once, searches each grid point in
@@ -98,7 +103,7 @@ def command(rig_path, datum_path, left, right, output, fps, timestamps, window, 
     try:
         setup = prepare_matching(rig, datum, lf[frames[0]], times, window=window, spacing=spacing,
                                  time_window=time_window, max_excursion_mm=max_excursion,
-                                 rectify_method=rectify_method, mask_image=mask_image)
+                                 rectify_method=rectify_method, mask_image=mask_image, shape_order=shape_order)
     except ValueError as exc:
         raise InputError(f"{datum_path} {exc}") from None
     params, gu, gv = setup.params, setup.grid_u, setup.grid_v

@@ -80,7 +80,7 @@ class FrameResult:
 
 def prepare_matching(rig, datum, first_left_frame, times, *, window=None, spacing=None, time_window: int = 1,
                      max_excursion_mm: float = 5.0, rectify_method: str = "bspline3", mask_image=None,
-                     segment=None) -> MatchSetup:
+                     segment=None, shape_order: int = 1) -> MatchSetup:
     """Set up the matching of one run.
 
     Parameters
@@ -97,6 +97,7 @@ def prepare_matching(rig, datum, first_left_frame, times, *, window=None, spacin
     rectify_method : see surfrec.match.rectification.METHODS.
     mask_image : (H, W) array or None, left-camera (unrectified) mask, non-zero = measure.
     segment : (N,) int or None, contiguous-segment labels (see :class:`MatchSetup`).
+    shape_order : 1 or 2, the IC-GN shape function (see MatchParams).
 
     Returns
     -------
@@ -117,7 +118,7 @@ def prepare_matching(rig, datum, first_left_frame, times, *, window=None, spacin
     window = window or _int_attr(datum.attrs, "window_px") or default_window(speckle)
     spacing = spacing or _int_attr(datum.attrs, "spacing_px") or 4
     params = MatchParams(window=window, spacing=spacing, time_window=time_window, max_excursion_mm=max_excursion_mm,
-                         rectify_method=rectify_method)
+                         rectify_method=rectify_method, shape_order=shape_order)
     rectifier = FrameRectifier(rig, rectify_method)
     gu, gv = matching_grid(rig.image_size, spacing, window)
     centre = reference_on_grid(datum.u, datum.v, datum.disparity, gu, gv)
