@@ -122,7 +122,9 @@ def cli():
     speckle-lit stereo camera rig.
 
     Stages: synth -> calibrate (check-rig) -> datum -> match -> heights ->
-    inspect/preview/assess -> spectrum/modes (wave analysis); batch runs of whole nights are to come. Every command has -v/--verbose and -q/--quiet.
+    inspect/preview/assess -> spectrum/modes (wave analysis); `run` drives
+    match + heights over a whole night (RUN.toml). Every command has
+    -v/--verbose and -q/--quiet.
     Exit status: 0 success, 1 failure while processing, 2 bad usage or input,
     3 a check that ran and failed.
     """
