@@ -615,6 +615,8 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                                 r2 += q * o * o
                                 sfg += frow[dx] * val
                         else:
+                            # The same sums as above, written out again: sharing them through a
+                            # buffer of sample values costs the fast path its vectorisation.
                             for dx in range(side):
                                 x = xa + dx * (1.0 + b1 + b2 * dx)
                                 if order == 3:
