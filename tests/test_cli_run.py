@@ -146,7 +146,7 @@ def _readable_or_absent(path):
             assert f["height"].shape[0] == 18
 
 
-@pytest.mark.parametrize("seed", [1, 2, 3])
+@pytest.mark.parametrize("seed", [1, 2])
 def test_kill_minus_9_at_random_moments_then_resume(prepared, tmp_path, seed):
     w = prepared["work"]
     rf = write_run(tmp_path / "run.toml", w, left=f"@{w / 'left.txt'}", right=f"@{w / 'right.txt'}",
@@ -177,7 +177,7 @@ def test_ctrl_c_finishes_the_chunk_in_hand_and_resume_checks_the_inputs(prepared
                          stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     journal = tmp_path / "heights.h5.journal"
     deadline = time.monotonic() + 60
-    while not list(journal.glob("chunk-*.npz")) and time.monotonic() < deadline:
+    while not list(journal.glob("chunk-*.h5")) and time.monotonic() < deadline:
         time.sleep(0.2)
     p.send_signal(signal.SIGINT)
     _, err = p.communicate(timeout=120)
@@ -186,7 +186,7 @@ def test_ctrl_c_finishes_the_chunk_in_hand_and_resume_checks_the_inputs(prepared
     assert p.returncode == 130, err
     assert f"run `surfrec run {rf}` again to resume" in err
     assert not (tmp_path / "heights.h5").exists()
-    done = len(list(journal.glob("chunk-*.npz")))
+    done = len(list(journal.glob("chunk-*.h5")))
     assert done >= 1
     # The run file changed: no resume, exit 2, saying what changed.
     text = rf.read_text()
@@ -197,6 +197,7 @@ def test_ctrl_c_finishes_the_chunk_in_hand_and_resume_checks_the_inputs(prepared
     res = run("run", rf, "--workers", 1, "-v")
     assert res.returncode == 0, res.stderr
     assert f"resuming: {done} chunks done before" in res.stderr
+    assert "frames: 18/18" in res.stderr              # the progress counts the frames done before too
     assert_same(tmp_path / "heights.h5", w / "ref.h5")
 
 
@@ -216,14 +217,17 @@ def test_corrupt_frame_abort_and_skip(prepared, tmp_path):
     # One line of ours (libpng may print its own complaint before it, from C).
     last = res.stderr.strip().splitlines()[-1]
     assert last.startswith("surfrec: error:") and "bad.png" in last and "Traceback" not in res.stderr
+    assert 'set on_bad_frame = "skip" in [batch]' in last                 # the way past it
     assert not (tmp_path / "h.h5").exists()
-    rf = write_run(tmp_path / "skip.toml", w, batch='chunk_frames = 4\non_bad_frame = "skip"', **common)
+    # No chunk_frames: the automatic chunking (two chunks of 9 for 2 workers, time window 3).
+    rf = write_run(tmp_path / "skip.toml", w, batch='on_bad_frame = "skip"', **common)
     res = run("run", rf, "--workers", 2, "--force")
     assert res.returncode == 0, res.stderr
     assert "frame 7 is unreadable" in res.stderr
     a = arrays(tmp_path / "h.h5")
     assert a["frame_flags"][7] & FLAG_UNREADABLE and np.isnan(a["height"][7]).all()
-    assert "frame 7" in (tmp_path / "h.log").read_text()
+    log = (tmp_path / "h.log").read_text()
+    assert "frame 7" in log and "in 2 chunks of 9" in log
     # Nothing else is lost: every frame whose time window (3) misses frame 7 equals the reference.
     keep = np.array([i for i in range(18) if abs(i - 7) > 1])
     assert_same(tmp_path / "h.h5", w / "ref.h5", frames=keep)
@@ -284,7 +288,7 @@ def test_full_disk_then_resume(prepared, tmp_path, monkeypatch):
     assert res.exit_code == 1
     assert "No space left on device" in res.output and "again to resume" in res.output
     assert not (tmp_path / "h.h5").exists()
-    assert len(list((tmp_path / "h.h5.journal").glob("chunk-*.npz"))) == 1
+    assert len(list((tmp_path / "h.h5.journal").glob("chunk-*.h5"))) == 1
     monkeypatch.setattr(journal.Journal, "write_chunk", real)
     res = run("run", rf, "--workers", 1, "-v")
     assert res.returncode == 0, res.stderr

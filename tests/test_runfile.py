@@ -26,7 +26,7 @@ def test_template_is_toml_and_valid(tmp_path):
     v = parse_run_text(TEMPLATE, base=tmp_path)
     assert v["inputs.rig"] == tmp_path / "rig.json"            # relative to the run file's folder
     assert v["output.heights"] == tmp_path / "heights.h5"
-    assert v["batch.chunk_frames"] == doc["batch"]["chunk_frames"]
+    assert "chunk_frames" not in doc["batch"] and v.get("batch.chunk_frames") is None   # chosen per run
     assert v["batch.on_bad_frame"] == "abort"
 
 
@@ -35,7 +35,7 @@ def test_every_problem_listed_with_key_and_line(tmp_path):
     text = (TEMPLATE.replace('rig = "rig.json"', 'rig = "missing.json"')
             .replace("time_window = 1", "time_window = 4")
             .replace("max_excursion_mm = 5.0", "max_excursion_mm = nan")
-            .replace("chunk_frames = 64", 'chunk_frames = "many"\ncolour = "blue"')
+            .replace("# chunk_frames = 64", 'chunk_frames = "many"\ncolour = "blue"')
             .replace("strict_rig = false", "strict_rig = 1")
             .replace('on_bad_frame = "abort"', 'on_bad_frame = "ignore"')
             + "\n[extras]\nx = 1\n")
@@ -57,8 +57,8 @@ def test_every_problem_listed_with_key_and_line(tmp_path):
 
 
 @pytest.mark.parametrize("edit, expected", [
-    (("chunk_frames = 64", "chunk_frames = 1000000000000"), "out of range"),
-    (("chunk_frames = 64", "chunk_frames = 0"), "out of range"),
+    (("# chunk_frames = 64", "chunk_frames = 1000000000000"), "out of range"),
+    (("# chunk_frames = 64", "chunk_frames = 0"), "out of range"),
     (("max_excursion_mm = 5.0", "max_excursion_mm = inf"), "finite"),
     (("# grid_step_mm = 1.0", "grid_step_mm = -1.0"), "out of range"),
     (("# extent_mm = [-100.0, 100.0, -80.0, 80.0]", "extent_mm = [100.0, -100.0, 0.0, 1.0]"), "xmin < xmax"),

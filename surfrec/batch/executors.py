@@ -61,10 +61,14 @@ class LocalPool:
     """A pool of ``workers`` processes on this machine, one compute thread each.
 
     Workers are started with "spawn" (a fresh interpreter, not a fork of a
-    process whose OpenCV or numba thread pools may already run).
+    process whose OpenCV or numba thread pools may already run), all at once,
+    and given ``spec`` make the run's set-up as they start (see
+    surfrec.batch.worker.worker_init): interpreter start-up, imports, kernel
+    loading and set-up then overlap the client's own work (rig check) instead
+    of delaying the first chunks.
     """
 
-    def __init__(self, workers: int):
+    def __init__(self, workers: int, spec=None):
         import multiprocessing as mp
 
         from surfrec.batch.worker import worker_init
@@ -73,7 +77,11 @@ class LocalPool:
         self.name = f"a local pool of {self.workers} worker processes"
         _thread_env()
         self.pool = cf.ProcessPoolExecutor(max_workers=self.workers, mp_context=mp.get_context("spawn"),
-                                           initializer=worker_init)
+                                           initializer=worker_init, initargs=(spec,))
+        # The pool starts a process only when a task finds none idle: one
+        # empty task per worker starts them all now.
+        for _ in range(self.workers):
+            self.pool.submit(int)
 
     def submit(self, fn, *args):
         return self.pool.submit(fn, *args)
@@ -188,10 +196,10 @@ def dask_security(path):
                     tls_worker_key=f["key"], require_encryption=req)
 
 
-def make_executor(*, workers: int, scheduler: str | None = None, security=None):
-    """The executor the options ask for (see the classes)."""
+def make_executor(*, workers: int, scheduler: str | None = None, security=None, spec=None):
+    """The executor the options ask for (see the classes); ``spec``: the run a local pool sets up as it starts."""
     if scheduler:
         return DaskExecutor(scheduler, workers=workers, security=security)
     if workers <= 1:
         return SerialExecutor()
-    return LocalPool(workers)
+    return LocalPool(workers, spec)

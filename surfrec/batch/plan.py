@@ -18,7 +18,7 @@ import numpy as np
 
 from surfrec.match.pipeline import FLAG_DROPPED
 
-__all__ = ["SlotPlan", "slots_by_index", "slots_by_time", "chunk_ranges", "GAP_PERIODS"]
+__all__ = ["SlotPlan", "slots_by_index", "slots_by_time", "chunk_ranges", "auto_chunk_frames", "GAP_PERIODS"]
 
 # A gap between consecutive frame times longer than this many frame periods
 # means frames were dropped (design: 1.5 periods).
@@ -164,6 +164,45 @@ def chunk_ranges(n: int, chunk_frames: int) -> list[tuple[int, int]]:
     """Consecutive [start, stop) slot ranges of at most ``chunk_frames`` slots covering 0..n."""
     k = max(1, int(chunk_frames))
     return [(a, min(n, a + k)) for a in range(0, n, k)]
+
+
+# Automatic chunk size (batch.chunk_frames not given): at most this many frames
+# per chunk (a minute or two of work on 1-megapixel frames: little is lost to a
+# crash, and a chunk's heights stay a few tens of MB in memory) ...
+AUTO_CHUNK_MAX = 64
+# ... at least this many time windows per chunk: a chunk re-reads and
+# rectifies time_window - 1 frames of its neighbours' ranges, so they stay
+# under a tenth of its own ...
+AUTO_WINDOWS_PER_CHUNK = 10
+# ... and, where the run is long enough, at least this many chunks per worker,
+# so that the last round leaves a worker idle for a small part of the run.
+AUTO_CHUNKS_PER_WORKER = 8
+
+
+def auto_chunk_frames(n: int, *, workers: int, time_window: int = 1, ny: int = 1, nx: int = 1) -> int:
+    """A chunk size for a run of ``n`` slots on ``workers`` workers (the default of batch.chunk_frames).
+
+    Between ``AUTO_WINDOWS_PER_CHUNK * time_window`` and :data:`AUTO_CHUNK_MAX`
+    frames, aiming at :data:`AUTO_CHUNKS_PER_WORKER` chunks per worker; then
+    the number of chunks is rounded up to a multiple of ``workers`` and the
+    frames shared out evenly, so that every worker gets the same work (chunks
+    of 8 frames rather than 5 of 10 and a short one for 48 frames on 2
+    workers). Kept under the 2 GiB per chunk of :func:`frames_fit` for a grid
+    of ``ny`` x ``nx`` nodes.
+
+    Returns
+    -------
+    int, frames per chunk (>= 1).
+    """
+    n = max(1, int(n))
+    w = max(1, int(workers))
+    k = max(AUTO_WINDOWS_PER_CHUNK * max(1, int(time_window)), math.ceil(n / (AUTO_CHUNKS_PER_WORKER * w)))
+    k = min(k, AUTO_CHUNK_MAX, n)
+    while k > 1 and not frames_fit(k, ny, nx):
+        k //= 2
+    m = math.ceil(n / k)
+    m = math.ceil(m / w) * w
+    return max(1, math.ceil(n / m))
 
 
 def frames_fit(chunk_frames: int, ny: int, nx: int, limit_bytes: float = 2**31) -> bool:

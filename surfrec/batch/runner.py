@@ -2,10 +2,11 @@
 
 The pattern is a map with a sink: :func:`execute_chunks` hands chunk ranges
 to any executor (this process, a local pool, Dask), keeps a bounded number in
-flight so memory stays flat whatever the run length, and writes each result
-to the journal (durably) before it counts as done. :func:`assemble` then
-streams the journal's chunks in order into a :class:`HeightsWriter`, whose
-file appears under its final name only when complete.
+flight so memory stays flat whatever the run length; each worker stores its
+chunk in the journal (durably, already compressed) before it reports it done,
+and the client checks the file. :func:`assemble` then copies the journal's
+chunks in order into a :class:`HeightsWriter` without decompressing them,
+whose file appears under its final name only when complete.
 """
 
 from __future__ import annotations
@@ -31,7 +32,9 @@ def execute_chunks(executor, fn, spec, chunks, journal: Journal, *, todo, on_don
     Parameters
     ----------
     executor : SerialExecutor, LocalPool or DaskExecutor.
-    fn : the chunk function, ``fn(spec, start, stop) -> dict of arrays``.
+    fn : the chunk function, ``fn(spec, k, start, stop) -> dict``: it computes
+        chunk k, stores it in the journal itself and returns the file's
+        ``sha256`` with the per-frame figures (surfrec.batch.worker.run_chunk).
     spec : its first argument (a JobSpec).
     chunks : list of (start, stop) slot ranges.  journal : where results go.
     todo : chunk numbers still to compute, in order.
@@ -39,7 +42,7 @@ def execute_chunks(executor, fn, spec, chunks, journal: Journal, *, todo, on_don
     should_stop : ``should_stop() -> bool``; when it turns true no further chunk
         is started, the chunks in hand are finished and journaled.
     in_flight_per_worker : chunks queued per worker (keeps every worker busy
-        while the client writes; bounds the results waiting in memory).
+        while the client checks the last result; bounds what waits in memory).
 
     Returns
     -------
@@ -58,13 +61,13 @@ def execute_chunks(executor, fn, spec, chunks, journal: Journal, *, todo, on_don
             stopping = stopping or bool(should_stop and should_stop())
             while pending and len(in_flight) < limit and not stopping:
                 k = pending.pop(0)
-                in_flight[executor.submit(fn, spec, *chunks[k])] = k
+                in_flight[executor.submit(fn, spec, k, *chunks[k])] = k
             if not in_flight:
                 break
             for f in executor.wait_first(list(in_flight)):
                 k = in_flight.pop(f)
                 result = f.result()
-                journal.write_chunk(k, result)
+                journal.accept_chunk(k, result["sha256"])
                 if on_done is not None:
                     on_done(k, result)
     except BaseException:
@@ -117,10 +120,9 @@ def assemble(journal: Journal, chunks, shape, writer, *, extra_attrs=None):
     summary = RunSummary()
     try:
         for k, (a, b) in enumerate(chunks):
-            c = journal.read_chunk(k, b - a, shape)
-            info = json.loads(str(c["info"]))
-            for i in range(b - a):
-                writer.append(float(c["time"][i]), c["height"][i], c["uncertainty"][i], int(c["flags"][i]))
+            with journal.open_chunk(k, b - a, shape) as c:
+                info = json.loads(c["info"])
+                writer.append_block(c["time"], c["height"], c["uncertainty"], c["flags"])
             summary.frames += b - a
             dropped = (c["flags"] & FLAG_DROPPED) > 0
             summary.dropped += int(dropped.sum())

@@ -1,11 +1,16 @@
 """One chunk of a run, computed in a worker process (local pool or Dask worker).
 
 The client sends a small :class:`JobSpec` (file names and parameters, no
-image data) and a slot range; the worker opens the inputs itself (on a
-cluster they sit on a shared file system at the same paths), sets the run up
-once per process (kept in :data:`_STATE`), and returns the chunk's heights and
-statistics as plain numpy arrays. It writes nothing: the client is the single
-writer of the journal and of heights.h5.
+image data) and a chunk number with its slot range; the worker opens the
+inputs itself (on a cluster they sit on a shared file system at the same
+paths), sets the run up once per process (kept in :data:`_STATE`, keyed by
+the run's token: rig, datum, frame headers, rectification maps, grid, band,
+mask, resampler and the compiled kernels are made or loaded once, not per
+chunk), and writes the chunk's heights itself, compressed as heights.h5
+stores them, durably into the journal. It returns only the file's hash and a
+few numbers per frame, so the compression runs in parallel and nothing big
+travels back. The client checks each reported file and is the single writer
+of heights.h5.
 
 A frame's result depends only on the frames of its own time window, so a
 chunk reads the frames its first and last windows need from its neighbours'
@@ -22,7 +27,7 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
-__all__ = ["JobSpec", "run_chunk", "limit_threads", "worker_init", "THREAD_ENV"]
+__all__ = ["JobSpec", "run_chunk", "compute_chunk", "limit_threads", "worker_init", "warm_up", "THREAD_ENV"]
 
 # One compute thread per worker: these libraries read them when they load, so
 # they are set in the environment the workers start with (and again at run
@@ -39,7 +44,8 @@ class JobSpec:
     """What a worker needs to compute any chunk of one run (small, picklable, no images).
 
     Paths are absolute. ``slot_left`` / ``slot_right`` give each slot's image
-    index per camera (-1: dropped), ``slot_time`` its time (s).
+    index per camera (-1: dropped), ``slot_time`` its time (s); ``journal``
+    is the journal folder the chunk files go to.
     """
 
     rig: str
@@ -56,6 +62,7 @@ class JobSpec:
     check_rig_every: int = 0
     check_rig_frames: int = 3
     rig_tolerance_px: float = 0.3
+    journal: str = ""
     token: str = field(default="")
 
     def __post_init__(self):
@@ -99,11 +106,14 @@ def limit_threads() -> None:
         pass
 
 
-def worker_init() -> None:
-    """Initializer of a local pool worker: one thread, and Ctrl-C left to the client.
+def worker_init(spec: "JobSpec | None" = None) -> None:
+    """Initializer of a local pool worker: one thread, Ctrl-C left to the client, the run set up at once.
 
     The terminal sends SIGINT to the whole process group; the client finishes
-    the chunks in hand, so the workers must not die of it.
+    the chunks in hand, so the workers must not die of it. With ``spec`` the
+    worker makes the run's set-up (and loads the compiled kernels) as soon as
+    it starts, while the client still checks the rig, instead of in its first
+    chunk.
     """
     import signal
     import threading
@@ -120,6 +130,39 @@ def worker_init() -> None:
         os._exit(1)
 
     threading.Thread(target=watch, daemon=True, name="surfrec-parent-watch").start()
+    if spec is not None:
+        try:
+            warm_up(spec)
+        except Exception:  # the first chunk makes the set-up again and reports the error properly
+            _STATE.clear()
+
+
+def warm_up(spec: "JobSpec") -> None:
+    """Make the run's set-up in this process and compile or load every kernel the chunks use.
+
+    numba loads a cached kernel on its first call, not at import: a call on
+    a tiny input here moves that cost out of the first chunk.
+    """
+    st = _state(spec)
+    if st.get("warm"):
+        return
+    from surfrec.match.pipeline import match_frame
+
+    setup = st["setup"]
+    p, band = setup.params, int(setup.band)
+    rng = np.random.default_rng(0)
+    h = p.window + 16
+    img = rng.random((1, h, p.window + 2 * band + 32), dtype=np.float32)
+    gu = np.array([p.window // 2 + band + 16])
+    gv = np.array([h // 2])
+    centre = np.zeros((1, 1))
+    match_frame(img, img, np.zeros(1), gu, gv, centre, band, p)
+    if p.time_window > 1:
+        stack = np.concatenate([img, img, img])
+        match_frame(stack, stack, np.array([-1.0, 0.0, 1.0]), gu, gv, centre, band, p)
+    w, h = st["rig"].image_size
+    setup.rectifier.left(np.zeros((h, w), np.float32))
+    st["warm"] = True
 
 
 class _SlotFrames:
@@ -175,7 +218,28 @@ def _state(spec: JobSpec, *, limit: bool = True) -> dict:
     return _STATE
 
 
-def run_chunk(spec: JobSpec, start: int, stop: int) -> dict:
+def run_chunk(spec: JobSpec, k: int, start: int, stop: int) -> dict:
+    """Compute chunk k (slots [start, stop)) and store it durably in the run's journal.
+
+    Returns
+    -------
+    dict: ``chunk`` (k), ``sha256`` of the chunk file, and the per-frame
+    figures of :data:`surfrec.batch.journal.SUMMARY_KEYS` (``flags``,
+    ``time``, ``coverage``, ``valid_fraction``, ``sigma_median_mm``,
+    ``info``) — everything but the heights, which stay in the file.
+    """
+    from surfrec.batch.journal import SUMMARY_KEYS, Journal
+
+    res = compute_chunk(spec, start, stop)
+    t0 = time.monotonic()
+    sha = Journal(spec.journal).write_chunk(k, res)
+    info = json.loads(str(res["info"]))
+    info["write_seconds"] = round(time.monotonic() - t0, 4)
+    return {"chunk": int(k), "sha256": sha, **{key: res[key] for key in SUMMARY_KEYS if key != "info"},
+            "info": json.dumps(info)}
+
+
+def compute_chunk(spec: JobSpec, start: int, stop: int) -> dict:
     """Match and resample slots [start, stop) of the run.
 
     Returns
@@ -204,8 +268,9 @@ def run_chunk(spec: JobSpec, start: int, stop: int) -> dict:
     smed = np.full(n, np.nan)
     reasons, resample, bad = {}, {}, []
     measurable = np.isfinite(setup.centre) & (setup.measure if setup.measure is not None else True)
-    for res in match_frames(setup, st["left"], st["right"], range(start, stop), unusable=st["unusable"],
-                            on_bad_frame=spec.on_bad_frame, bad_frame_errors=(InputError,)):
+    for res in _with_hint(match_frames(setup, st["left"], st["right"], range(start, stop), unusable=st["unusable"],
+                                       on_bad_frame=spec.on_bad_frame, bad_frame_errors=(InputError,)),
+                          spec.on_bad_frame):
         k = res.index - start
         if res.flags & FLAG_BLANK and spec.on_bad_frame == "abort":
             raise InputError(f"frame {res.index} ({_names(st, res.index)}) is blank (no speckle contrast); "
@@ -231,6 +296,18 @@ def run_chunk(spec: JobSpec, start: int, stop: int) -> dict:
     return {"height": height, "uncertainty": sigma, "flags": flags, "time": np.asarray(spec.slot_time[start:stop]),
             "coverage": coverage, "valid_fraction": valid, "sigma_median_mm": smed,
             "info": np.array(json.dumps(info))}
+
+
+def _with_hint(results, policy: str):
+    """The matcher's results; an unreadable frame under ``abort`` says how to keep going past it."""
+    from surfrec.errors import InputError
+
+    try:
+        yield from results
+    except InputError as exc:
+        if policy != "abort":
+            raise
+        raise InputError(f"{exc}; set on_bad_frame = \"skip\" in [batch] to keep going past such frames") from None
 
 
 def _threads() -> dict:

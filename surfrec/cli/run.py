@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import logging
+import os
 import shlex
 import signal
 import sys
@@ -69,6 +70,7 @@ def _run(run_file, workers, scheduler, security_path, strict_rig, force):
     from surfrec.batch import plan as plan_mod
     from surfrec.batch.journal import Journal
     from surfrec.batch.worker import JobSpec, _state
+    from surfrec.cli.options import available_cores
     from surfrec.errors import InputError
     from surfrec.io.datumfile import read_datum
     from surfrec.io.images import open_frames, pair_frames
@@ -125,11 +127,13 @@ def _run(run_file, workers, scheduler, security_path, strict_rig, force):
     heights_opts = {"grid_step_mm": v.get("heights.grid_step_mm"), "extent_mm": v.get("heights.extent_mm"),
                     "circles": [list(c) for c in v["heights.exclude_circles_mm"]],
                     "polygons": [p.tolist() for p in polygons], "still_correction": v["heights.still_correction"]}
+    journal = Journal(out.parent / f"{out.name}.journal")
     spec = JobSpec(rig=str(v["inputs.rig"]), datum=str(v["inputs.datum"]), left=v["inputs.left"],
                    right=v["inputs.right"], slot_left=slots.left, slot_right=slots.right, slot_time=slots.time,
                    slot_flags=slots.flags, match=match_opts, heights=heights_opts,
                    on_bad_frame=v["batch.on_bad_frame"], check_rig_every=v["batch.check_rig_every"],
-                   check_rig_frames=v["batch.check_rig_frames"], rig_tolerance_px=v["batch.rig_tolerance_px"])
+                   check_rig_frames=v["batch.check_rig_frames"], rig_tolerance_px=v["batch.rig_tolerance_px"],
+                   journal=os.path.abspath(journal.folder))
     # The set-up the workers make, made here too: it validates the inputs once
     # more before anything starts, and gives the grid of heights.h5.
     try:
@@ -138,11 +142,11 @@ def _run(run_file, workers, scheduler, security_path, strict_rig, force):
         raise InputError(str(exc)) from None
     setup, hsetup = st["setup"], st["hsetup"]
     ny, nx = hsetup.shape
-    chunk_frames = v["batch.chunk_frames"]
-    if not plan_mod.frames_fit(chunk_frames, ny, nx):
+    chunk_frames = v.get("batch.chunk_frames")
+    if chunk_frames is not None and not plan_mod.frames_fit(chunk_frames, ny, nx):
         raise InputError(f"{cfg.path}: batch.chunk_frames = {chunk_frames} frames of {nx} x {ny} nodes would hold "
                          f"{8 * chunk_frames * ny * nx / 2**30:.1f} GiB per chunk; choose a smaller chunk_frames")
-    chunks = plan_mod.chunk_ranges(n, chunk_frames)
+    workers = workers or v.get("batch.workers") or available_cores()
 
     # ---- the journal: resume only what was made from the same inputs
     inputs_hash = hashlib.sha256(json.dumps(
@@ -152,7 +156,6 @@ def _run(run_file, workers, scheduler, security_path, strict_rig, force):
          "mask": file_sha256(v["match.mask"]) if v.get("match.mask") else None,
          "polygons": [file_sha256(p) for p in v["heights.exclude_polygons"]]}).encode()).hexdigest()
     hashes = {"run file": cfg.sha256, "rig": rig_hash, "datum": datum_hash, "list of inputs": inputs_hash}
-    journal = Journal(out.parent / f"{out.name}.journal")
     journal.lock()
     try:
         resumed = False
@@ -162,11 +165,22 @@ def _run(run_file, workers, scheduler, security_path, strict_rig, force):
             if changed:
                 raise InputError(f"cannot resume the run in {journal.folder}: the {', the '.join(changed)} changed "
                                  "since it began; restore them, or use --force to start over")
+            # The chunking is the journal's, whatever the workers now (an automatic
+            # chunk size depends on the worker count of the first session).
+            recorded = manifest.get("chunk_frames")
+            if (not isinstance(recorded, int) or isinstance(recorded, bool) or not 1 <= recorded <= 100_000
+                    or not plan_mod.frames_fit(recorded, ny, nx)):
+                raise InputError(f"{journal.manifest_path} records no usable chunk size; use --force to start over")
+            chunk_frames = recorded
             resumed = True
         else:
+            if chunk_frames is None:
+                chunk_frames = plan_mod.auto_chunk_frames(n, workers=workers, time_window=v["match.time_window"],
+                                                          ny=ny, nx=nx)
             manifest = {"software": f"surfrec {__version__}", "hashes": hashes, "run_file": str(cfg.path),
                         "started": _now_iso(), "slots": n, "chunk_frames": chunk_frames, "grid": [ny, nx]}
             journal.start(manifest)
+        chunks = plan_mod.chunk_ranges(n, chunk_frames)
         done = journal.done(len(chunks))
         _remove_stale_partials(out)
         logfile = _open_log(out)
@@ -181,7 +195,6 @@ def _execute(ctx):
     from surfrec.batch.executors import dask_security, make_executor
     from surfrec.batch.runner import assemble, execute_chunks
     from surfrec.batch.worker import check_rig_on, run_chunk
-    from surfrec.cli.options import available_cores
     from surfrec.cli.progress import Progress
     from surfrec.errors import CheckFailed, InputError, ProcessingError
     from surfrec.io.heightsfile import HeightsWriter
@@ -204,31 +217,39 @@ def _execute(ctx):
             log.warning("warning: %s (kept as NaN frames flagged 'dropped'; no time window reaches across them)",
                         slots.describe_drops())
 
-        # ---- the rig check on the first frames
-        nchk = v["batch.check_rig_frames"]
-        if nchk > 0:
-            first = [s for s in range(n) if slots.left[s] >= 0 and slots.right[s] >= 0][:nchk]
-            try:
-                chk = check_rig_on(st, first, v["batch.rig_tolerance_px"])
-            except InputError as exc:
-                chk = {"holds": True, "message": f"not checked ({exc})", "p95_px": float("nan"), "warnings": []}
-                log.warning("warning: rig check at the start: %s", exc)
-            record.info("rig check at the start (%d frame pairs): %s (95th percentile |dv| %.3f px)", len(first),
-                        chk["message"], chk["p95_px"])
-            if not chk["holds"]:
-                if c["strict_rig"]:
-                    raise CheckFailed(f"{chk['message']} (rig check on the first {len(first)} frame pairs; "
-                                      "--strict-rig)")
-                log.warning("warning: rig check at the start: %s", chk["message"])
-
         # ---- the chunks
         todo = [k for k in range(len(chunks)) if k not in done]
-        workers = c["workers"] or v.get("batch.workers") or available_cores()
+        workers = c["workers"]
         scheduler = c["scheduler"] or v.get("batch.scheduler")
         sec_path = c["security_path"] or v.get("batch.cluster_security")
         security = dask_security(sec_path) if sec_path else None
         if security is not None and not scheduler:
             raise InputError("--cluster-security applies to a Dask scheduler; give --scheduler too")
+        # The pool starts now: its workers start up and make the run's set-up while
+        # this process checks the rig.
+        executor = (make_executor(workers=workers, scheduler=scheduler, security=security, spec=c["spec"])
+                    if todo else None)
+        try:
+            # ---- the rig check on the first frames (the workers start meanwhile)
+            nchk = v["batch.check_rig_frames"]
+            if nchk > 0:
+                first = [s for s in range(n) if slots.left[s] >= 0 and slots.right[s] >= 0][:nchk]
+                try:
+                    chk = check_rig_on(st, first, v["batch.rig_tolerance_px"])
+                except InputError as exc:
+                    chk = {"holds": True, "message": f"not checked ({exc})", "p95_px": float("nan"), "warnings": []}
+                    log.warning("warning: rig check at the start: %s", exc)
+                record.info("rig check at the start (%d frame pairs): %s (95th percentile |dv| %.3f px)", len(first),
+                            chk["message"], chk["p95_px"])
+                if not chk["holds"]:
+                    if c["strict_rig"]:
+                        raise CheckFailed(f"{chk['message']} (rig check on the first {len(first)} frame pairs; "
+                                          "--strict-rig)")
+                    log.warning("warning: rig check at the start: %s", chk["message"])
+        except BaseException:
+            if executor is not None:
+                executor.shutdown(cancel=True)
+            raise
         stop = {"asked": False}
 
         def on_sigint(signum, frame):
@@ -240,14 +261,14 @@ def _execute(ctx):
         level0 = {"mm": _first_level(journal, done)}
         frames_todo = sum(chunks[k][1] - chunks[k][0] for k in todo)
         t0 = time.monotonic()
-        executor = make_executor(workers=workers, scheduler=scheduler, security=security) if todo else None
         if executor is not None:
             log.info("computing %d chunks (%d frames) on %s", len(todo), frames_todo, executor.name)
         old = signal.signal(signal.SIGINT, on_sigint)
-        count = {"frames": 0}
+        # A resumed run's bar counts the frames of the chunks done before.
+        count = {"frames": n - frames_todo}
         complete = True
         try:
-            with Progress(max(frames_todo, 1), "frames") as progress:
+            with Progress(max(n, 1), "frames", initial=count["frames"]) as progress:
                 def on_done(k, res):
                     a, b = chunks[k]
                     count["frames"] += b - a
@@ -336,10 +357,10 @@ def _first_level(journal, done):
 
     if 0 not in done:
         return None
+    info = journal.read_info(0)   # None when damaged: the assembly finds it again; the drift check starts later
     try:
-        with np.load(journal.chunk_path(0), allow_pickle=False) as z:
-            return float(json.loads(str(z["info"])).get("level_mm"))
-    except Exception:  # a damaged chunk is found again at the assembly; the drift check just starts later
+        return float(info.get("level_mm"))
+    except (AttributeError, TypeError, ValueError):
         return None
 
 

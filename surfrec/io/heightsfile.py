@@ -100,8 +100,8 @@ _SIGMA_ATTRS = {"units": "mm", "long_name": "height 1-sigma uncertainty, random 
 _FLAGS_ATTRS = {"long_name": "frame quality flags (bit field)", "standard_name": "status_flag"}
 _FOOTPRINT_ATTRS = {"long_name": "1 inside the area both cameras see and not excluded", "units": "1"}
 
-__all__ = ["FLAG_MEANINGS", "FLAG_VALUES", "FORMAT", "HeightsWriter", "VERSION", "read_heights", "time_units",
-           "write_heights"]
+__all__ = ["FLAG_MEANINGS", "FLAG_VALUES", "FORMAT", "HeightsWriter", "VERSION", "frame_dataset_options",
+           "read_heights", "same_frame_layout", "time_units", "write_heights"]
 
 
 def time_units(time_origin_iso: str | None) -> tuple[str, str]:
@@ -136,6 +136,29 @@ def time_units(time_origin_iso: str | None) -> tuple[str, str]:
         t = t.replace(tzinfo=_dt.timezone.utc) if t.tzinfo is None else t.astimezone(_dt.timezone.utc)
     stamp = t.strftime("%Y-%m-%d %H:%M:%S") + (f".{t.microsecond:06d}" if t.microsecond else "")
     return f"seconds since {stamp}", t.isoformat()
+
+
+def frame_dataset_options(ny: int, nx: int) -> dict:
+    """h5py ``create_dataset`` options of a (T, Ny, Nx) frame variable (height, height_uncertainty).
+
+    One place for the layout (float32, chunks of one frame by as many rows as
+    keep a chunk near :data:`CHUNK_BYTES`, gzip level 4 with shuffle, NaN
+    fill), so that a file written elsewhere with the same options — a run's
+    journal chunks, written by the workers — can be copied into heights.h5
+    chunk by chunk without decompressing (:meth:`HeightsWriter.append_block`).
+    """
+    rows = max(1, min(ny, CHUNK_BYTES // (4 * nx)))
+    return dict(dtype=np.float32, chunks=(1, rows, nx), compression="gzip", compression_opts=4, shuffle=True,
+                fillvalue=np.float32(np.nan))
+
+
+def same_frame_layout(ds, ny: int, nx: int) -> bool:
+    """Whether h5py dataset ``ds`` stores (n, Ny, Nx) frames exactly as :func:`frame_dataset_options` says."""
+    o = frame_dataset_options(ny, nx)
+    return (ds.ndim == 3 and ds.shape[1:] == (ny, nx) and ds.dtype == np.dtype(o["dtype"])
+            and ds.chunks == o["chunks"] and ds.compression == o["compression"]
+            and ds.compression_opts == o["compression_opts"] and bool(ds.shuffle) == o["shuffle"]
+            and not ds.fletcher32 and ds.scaleoffset is None)
 
 
 class HeightsWriter:
@@ -225,9 +248,7 @@ class HeightsWriter:
         for ds, name in ((tds, "time"), (yds, "y"), (xds, "x")):
             ds.make_scale(name)
 
-        rows = max(1, min(ny, CHUNK_BYTES // (4 * nx)))
-        opts = dict(dtype=np.float32, chunks=(1, rows, nx), compression="gzip", compression_opts=4, shuffle=True,
-                    fillvalue=np.float32(np.nan))
+        opts = frame_dataset_options(ny, nx)
         for name, a in (("height", _HEIGHT_ATTRS), ("height_uncertainty", _SIGMA_ATTRS)):
             ds = f.create_dataset(name, shape=(0, ny, nx), maxshape=(None, ny, nx), **opts)
             ds.attrs["_FillValue"] = np.float32(np.nan)
@@ -277,6 +298,50 @@ class HeightsWriter:
         self.n += 1
         if self.n % 64 == 0:
             f.flush()
+
+    def append_block(self, time_s, height, uncertainty, flags) -> None:
+        """Add n frames stored in another HDF5 file, copying their compressed chunks as they are.
+
+        The frames' compression was done where they were computed (a run's
+        workers, in parallel), so the one writer only moves bytes: chunks are
+        read and written with HDF5's direct chunk I/O, which gives the same
+        stored bytes, hence the same values, as decompressing and appending
+        them frame by frame. A source whose layout differs from
+        :func:`frame_dataset_options` is decompressed and appended instead.
+
+        Parameters
+        ----------
+        time_s : (n,) s since the time origin.
+        height, uncertainty : h5py datasets (n, Ny, Nx) float32, mm (datum frame; 1-sigma).
+        flags : (n,) bit fields of :data:`FLAG_VALUES`.
+        """
+        t = np.asarray(time_s, np.float64).reshape(-1)
+        fl = np.asarray(flags).reshape(-1)
+        n = t.size
+        ny, nx = self.shape
+        if fl.size != n or height.shape != (n, ny, nx) or uncertainty.shape != (n, ny, nx):
+            raise ValueError(f"block of {n} frames has height {height.shape}, uncertainty {uncertainty.shape} and "
+                             f"{fl.size} flags, expected ({n}, {ny}, {nx}) each")
+        if not (same_frame_layout(height, ny, nx) and same_frame_layout(uncertainty, ny, nx)):
+            for i in range(n):
+                self.append(t[i], height[i], uncertainty[i], int(fl[i]))
+            return
+        f = self.f
+        i0 = self.n
+        rows = frame_dataset_options(ny, nx)["chunks"][1]
+        for name, src in (("height", height), ("height_uncertainty", uncertainty)):
+            dst = f[name]
+            dst.resize(i0 + n, axis=0)
+            for i in range(n):
+                for r in range(0, ny, rows):
+                    mask, data = src.id.read_direct_chunk((i, r, 0))
+                    dst.id.write_direct_chunk((i0 + i, r, 0), data, mask)
+        for name, arr in (("time", t), ("frame_flags", fl.astype(np.uint8))):
+            ds = f[name]
+            ds.resize(i0 + n, axis=0)
+            ds[i0:i0 + n] = arr
+        self.n += n
+        f.flush()
 
     def close(self, extra_attrs: dict | None = None) -> Path:
         """Add ``extra_attrs`` to the root, finish the file and rename it into place.

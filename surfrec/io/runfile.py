@@ -67,7 +67,8 @@ rectify = "bspline3"                  # bspline3 | bspline5 | cubic | lanczos4 |
 still_correction = true
 
 [batch]
-chunk_frames = 64                     # frames per chunk (the unit of parallel work and of resume)
+# chunk_frames = 64                   # frames per chunk (the unit of parallel work and of resume); default:
+                                      # chosen per run (up to 64, the same work for every worker)
 # workers = 2                         # local worker processes; default: the cores this process may use
 # scheduler = "tcp://10.0.0.5:8786"   # a Dask scheduler, or "local" for a LocalCluster (pip install surfrec[cluster])
 # cluster_security = "tls.toml"       # Dask TLS certificates (docs/batch-runs.md); never run a scheduler
@@ -111,7 +112,7 @@ _SCHEMA = {
 _DEFAULTS = {
     "match.time_window": 1, "match.max_excursion_mm": 5.0, "match.rectify": "bspline3",
     "heights.still_correction": True, "heights.exclude_circles_mm": [], "heights.exclude_polygons": [],
-    "batch.chunk_frames": 64, "batch.on_bad_frame": "abort", "batch.strict_rig": False,
+    "batch.on_bad_frame": "abort", "batch.strict_rig": False,
     "batch.check_rig_frames": 3, "batch.check_rig_every": 5000, "batch.rig_tolerance_px": 0.3,
     "batch.level_drift_mm": 0.3,
 }
