@@ -1,18 +1,42 @@
 """Benchmark of `surfrec run`: parallel efficiency, batch overhead, memory against run length, projection.
 
-Usage: python tests/benchmarks/bench_run.py [--session DIR] [--repeats N]
+Usage::
 
-DIR is a synthetic session folder (`surfrec synth DIR`, the default 1280x1024
-session; `--quick` ones work too) with rig.json and datum.h5 made by
-`surfrec calibrate` / `surfrec datum`; without it a quick session is made in
-a temporary folder. Every figure is a median over --repeats runs and is
-quoted as a ratio against a reference measured in the same process tree
-(the machine is shared): 1 worker against 2, the batch layer against calling
-the stages directly, 200 frames against 2000.
+    python tests/benchmarks/bench_run.py --session DIR [--frames N] [--repeats R]
+        [--memory-session QDIR] [--memory-frames 200,2000] [--json-out FILE]
+
+DIR is a session folder (`surfrec synth DIR`, the default 1280x1024 session,
+or a `--quick` one) holding rig.json and datum.h5 (made with `surfrec
+calibrate` / `surfrec datum`, or a true rig) and waves/left, waves/right. Its
+wave frames are listed cyclically in @LIST files to make a run of N frame
+pairs without rendering them all (the frames differ, the cost per frame is
+that of real frames). QDIR (default: DIR) serves the memory runs, which use a
+coarse grid (spacing 16 px) to stay quick.
+
+Three configurations are timed **interleaved** in each repeat, in a rotating
+order (the machine is shared: quote medians and ratios measured in the same
+run):
+
+- ``direct``: the stages called directly in one process — read the rig, the
+  datum and the frame headers, ``prepare_matching``, ``match_frames`` over
+  every frame, ``heights_of_frame``, and the same heights.h5 written with
+  ``HeightsWriter`` (what `surfrec match` + `surfrec heights` compute, without
+  the disparity file in between);
+- ``run1``: `surfrec run --workers 1` (chunks in the client process);
+- ``run2``: `surfrec run --workers 2` (a local pool of two worker processes).
+
+Each is a fresh process (imports, kernel loading and set-up included in all
+three). Wall time and CPU time (user + system of the process and all its
+children) are recorded. Figures: parallel efficiency ``run1 / (2 run2)``
+(wall), batch overhead ``run1 / direct - 1`` (wall and CPU), CPU of run2
+over run1 (work the pool adds), peak resident memory at two run lengths, and
+the hours a 50,000-pair run of 1-megapixel frames takes on this machine,
+from the measured cost per frame scaled by the pixel count.
 """
 
 import argparse
 import json
+import os
 import resource
 import statistics
 import subprocess
@@ -22,22 +46,8 @@ import time
 from pathlib import Path
 
 
-def sh(*args, cwd=None):
-    res = subprocess.run([sys.executable, "-m", "surfrec.cli.main", *map(str, args)], capture_output=True, text=True,
-                         cwd=cwd)
-    if res.returncode:
-        raise SystemExit(res.stderr)
-    return res
-
-
-def make_session(root: Path) -> Path:
-    s = root / "session"
-    sh("synth", s, "--quick", "-q")
-    sh("calibrate", "--left", s / "target/left/*.png", "--right", s / "target/right/*.png", "--board", "11x8",
-       "--square", 15, "-o", s / "rig.json", "-q")
-    sh("datum", "--rig", s / "rig.json", "--left", s / "still/left", "--right", s / "still/right", "-o",
-       s / "datum.h5", "-q")
-    return s
+def cli(*args):
+    return [sys.executable, "-m", "surfrec.cli.main", *map(str, args)]
 
 
 def lists(s: Path, work: Path, n: int, tag: str):
@@ -50,7 +60,7 @@ def lists(s: Path, work: Path, n: int, tag: str):
     return out
 
 
-def run_file(s, work, n, tag, *, chunk=16, spacing=None):
+def run_file(s, work, n, tag, *, spacing=None, chunk=None):
     left, right = lists(s, work, n, tag)
     rf = work / f"{tag}.toml"
     rf.write_text(f"""[inputs]
@@ -64,56 +74,62 @@ heights = "{work / (tag + '.h5')}"
 [match]
 {'spacing = %d' % spacing if spacing else ''}
 [batch]
-chunk_frames = {chunk}
+{'chunk_frames = %d' % chunk if chunk else ''}
 check_rig_frames = 0
 """)
-    return rf
+    return rf, left, right
 
 
-def timed_run(rf, workers):
-    t0 = time.perf_counter()
-    sh("run", rf, "--workers", workers, "--force", "-q")
-    return time.perf_counter() - t0
-
-
-def direct_stages(s, n):
-    """The stages called directly in one process (no run file, journal, chunks or assembly)."""
-    code = f"""
-import time, numpy as np
+DIRECT = """
+import sys, time, numpy as np
 from surfrec.batch.worker import limit_threads
 limit_threads()
 from surfrec.io.rigfile import read_rig
 from surfrec.io.datumfile import read_datum
 from surfrec.io.images import open_frames
+from surfrec.io.heightsfile import HeightsWriter
 from surfrec.match.session import prepare_matching, match_frames
 from surfrec.geometry.session import prepare_heights, heights_of_frame
+rig_p, datum_p, left_p, right_p, out_p = sys.argv[1:6]
 t0 = time.perf_counter()
-rig = read_rig({str(s / 'rig.json')!r}); datum = read_datum({str(s / 'datum.h5')!r})
-lf = open_frames({str(s / 'waves/left')!r}); rf = open_frames({str(s / 'waves/right')!r})
-m = len(lf)
-class Rep:
-    def __init__(self, seq): self.seq = seq
-    def __getitem__(self, i): return self.seq[i % m]
-setup = prepare_matching(rig, datum, lf[0], np.arange({n}) / 500.0)
+rig = read_rig(rig_p); datum = read_datum(datum_p)
+lf = open_frames(left_p, expected_size=rig.image_size); rf = open_frames(right_p, expected_size=rig.image_size)
+n = len(lf)
+times = np.arange(n) / 500.0
+setup = prepare_matching(rig, datum, lf[0], times)
 hs = prepare_heights(setup.grid_u, setup.grid_v, rig, datum)
-for r in match_frames(setup, Rep(lf), Rep(rf), range({n})):
-    heights_of_frame(hs, r.disparity, r.disparity_sigma, r.flags)
-print(time.perf_counter() - t0)
+w = HeightsWriter(out_p, hs.plan.x, hs.plan.y, attrs={"world_to_left_camera": datum.world_to_left_camera.ravel()},
+                  time_origin_iso=None, n_frames=n, footprint=hs.plan.footprint)
+t_write = 0.0
+for r in match_frames(setup, lf, rf, range(n)):
+    fh = heights_of_frame(hs, r.disparity, r.disparity_sigma, r.flags)
+    t1 = time.perf_counter()
+    w.append(times[r.index], fh.height, fh.uncertainty, fh.flags)
+    t_write += time.perf_counter() - t1
+w.close()
+print(time.perf_counter() - t0, t_write)
 """
+
+
+def timed(cmd, env=None):
+    """Wall seconds and CPU seconds (user + system, the process and its children) of one command."""
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
     t0 = time.perf_counter()
-    subprocess.run([sys.executable, "-c", code], check=True, capture_output=True)
-    return time.perf_counter() - t0
+    p = subprocess.run(cmd, capture_output=True, text=True, env=env)
+    wall = time.perf_counter() - t0
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    if p.returncode:
+        raise SystemExit(p.stderr)
+    cpu = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+    return wall, cpu, p.stdout
 
 
-def peak_rss_mb(rf):
-    """Peak resident memory (MB) of one serial run (--workers 1: client and worker are one process)."""
-    code = ("import resource, sys\n"
-            "from surfrec.cli.main import cli\n"
-            "try:\n"
-            f"    cli(['run', {str(rf)!r}, '--workers', '1', '--force', '-q'])\n"
-            "except SystemExit as e:\n"
-            "    assert not e.code, e.code\n"
-            "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)\n")
+def peak_rss_mb(rf, workers):
+    """Peak resident memory (MB) of the largest process of one run (client, or a worker)."""
+    code = ("import resource, subprocess, sys\n"
+            f"p = subprocess.run({cli('run', rf, '--workers', workers, '--force', '-q')!r}, capture_output=True)\n"
+            "assert p.returncode == 0, p.stderr\n"
+            "print(resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss)\n")
     p = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
     if p.returncode:
         raise SystemExit(p.stderr)
@@ -122,31 +138,65 @@ def peak_rss_mb(rf):
 
 def main():
     ap = argparse.ArgumentParser()
-    ap.add_argument("--session", type=Path)
+    ap.add_argument("--session", type=Path, required=True)
+    ap.add_argument("--memory-session", type=Path)
     ap.add_argument("--repeats", type=int, default=3)
-    ap.add_argument("--frames", type=int, default=48)
+    ap.add_argument("--frames", type=int, default=40)
+    ap.add_argument("--memory-frames", default="200,2000")
+    ap.add_argument("--json-out", type=Path)
     args = ap.parse_args()
-    tmp = Path(tempfile.mkdtemp(prefix="bench-run-"))
-    s = args.session or make_session(tmp)
+    work = Path(tempfile.mkdtemp(prefix="bench-run-"))
+    s = args.session.resolve()
     n = args.frames
-    rf = run_file(s, tmp, n, "eff")
-    timed_run(rf, 1)  # warm the numba cache and the file cache
-    t1 = [timed_run(rf, 1) for _ in range(args.repeats)]
-    t2 = [timed_run(rf, 2) for _ in range(args.repeats)]
-    td = [direct_stages(s, n) for _ in range(args.repeats)]
-    m1, m2, md = map(statistics.median, (t1, t2, td))
-    out = {"frames": n, "seconds_1_worker": m1, "seconds_2_workers": m2, "seconds_direct_stages": md,
-           "parallel_efficiency_1_to_2": m1 / (2 * m2), "batch_overhead": m1 / md - 1,
-           "seconds_per_frame_1_worker": m1 / n, "seconds_per_frame_2_workers": m2 / n}
+    rf, left, right = run_file(s, work, n, "eff")
+    direct = [sys.executable, "-c", DIRECT, s / "rig.json", s / "datum.h5", f"@{left}", f"@{right}",
+              work / "direct.h5"]
+    configs = {"direct": lambda: timed(list(map(str, direct))),
+               "run1": lambda: timed(cli("run", rf, "--workers", 1, "--force", "-q")),
+               "run2": lambda: timed(cli("run", rf, "--workers", 2, "--force", "-q"))}
+    timed(cli("run", rf, "--workers", 1, "--force", "-q"))  # warm the numba cache and the file cache
+    wall = {k: [] for k in configs}
+    cpu = {k: [] for k in configs}
+    write_s = []
+    order = list(configs)
+    for r in range(args.repeats):
+        for k in order[r % 3:] + order[:r % 3]:          # rotate, so no configuration always goes first
+            w, c, out = configs[k]()
+            wall[k].append(w)
+            cpu[k].append(c)
+            if k == "direct":
+                write_s.append(float(out.split()[1]))
+            print(f"repeat {r}: {k} {w:.2f} s wall, {c:.2f} s CPU (load {os.getloadavg()[0]:.1f})", file=sys.stderr)
+    med = {k: statistics.median(v) for k, v in wall.items()}
+    medc = {k: statistics.median(v) for k, v in cpu.items()}
     rig = json.loads((s / "rig.json").read_text())
-    w, h = rig["image_size"]
-    per_mp = (m2 / n) / (w * h / 1e6)   # the matcher's work scales with the grid points, i.e. with the pixels
-    out["image_megapixels"] = w * h / 1e6
-    out["projected_hours_50000_1MP_pairs_2_cores"] = 50000 * per_mp / 3600
-    # Memory against run length: the same small frames, 200 and 2000 of them (a coarse grid keeps it quick).
-    out["peak_rss_mb_200_frames"] = peak_rss_mb(run_file(s, tmp, 200, "m200", chunk=64, spacing=16))
-    out["peak_rss_mb_2000_frames"] = peak_rss_mb(run_file(s, tmp, 2000, "m2000", chunk=64, spacing=16))
-    print(json.dumps(out, indent=1))
+    w_px, h_px = rig["image_size"]
+    mp = w_px * h_px / 1e6
+    eff = [a / (2 * b) for a, b in zip(wall["run1"], wall["run2"])]
+    ovh = [a / b - 1 for a, b in zip(wall["run1"], wall["direct"])]
+    out = {"session": str(s), "image_px": [w_px, h_px], "frames": n, "repeats": args.repeats,
+           "wall_s": wall, "cpu_s": cpu, "median_wall_s": med, "median_cpu_s": medc,
+           "direct_write_s_median": statistics.median(write_s),
+           "parallel_efficiency_1_to_2_median": statistics.median(eff),
+           "parallel_efficiency_of_medians": med["run1"] / (2 * med["run2"]),
+           "batch_overhead_wall_median": statistics.median(ovh),
+           "batch_overhead_cpu": medc["run1"] / medc["direct"] - 1,
+           "cpu_run2_over_run1": medc["run2"] / medc["run1"],
+           "s_per_frame_direct": med["direct"] / n, "s_per_frame_run1": med["run1"] / n,
+           "s_per_frame_run2": med["run2"] / n, "cpu_s_per_frame_run1": medc["run1"] / n}
+    # Projection: the matcher's work scales with the grid points, i.e. with the pixels.
+    out["projected_hours_50000_1MP_from_run2_wall"] = 50000 * (med["run2"] / n) / mp / 3600
+    out["projected_hours_50000_1MP_from_cpu_2_cores"] = 50000 * (medc["run1"] / n) / mp / 2 / 3600
+    # Memory against run length (the same small frames, a coarse grid keeps it quick).
+    ms = (args.memory_session or s).resolve()
+    for m in map(int, args.memory_frames.split(",")):
+        mrf, _, _ = run_file(ms, work, m, f"m{m}", spacing=16)
+        out[f"peak_rss_mb_{m}_frames_1_worker"] = peak_rss_mb(mrf, 1)
+        out[f"peak_rss_mb_{m}_frames_2_workers"] = peak_rss_mb(mrf, 2)
+    text = json.dumps(out, indent=1)
+    print(text)
+    if args.json_out:
+        args.json_out.write_text(text)
 
 
 if __name__ == "__main__":
