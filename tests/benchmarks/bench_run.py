@@ -189,7 +189,7 @@ def main():
     out["projected_hours_50000_1MP_from_cpu_2_cores"] = 50000 * (medc["run1"] / n) / mp / 2 / 3600
     # Memory against run length (the same small frames, a coarse grid keeps it quick).
     ms = (args.memory_session or s).resolve()
-    for m in map(int, args.memory_frames.split(",")):
+    for m in (int(x) for x in args.memory_frames.split(",") if x.strip()):   # "" skips the memory runs
         mrf, _, _ = run_file(ms, work, m, f"m{m}", spacing=16)
         out[f"peak_rss_mb_{m}_frames_1_worker"] = peak_rss_mb(mrf, 1)
         out[f"peak_rss_mb_{m}_frames_2_workers"] = peak_rss_mb(mrf, 2)
