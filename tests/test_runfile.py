@@ -61,6 +61,7 @@ def test_every_problem_listed_with_key_and_line(tmp_path):
     (("# chunk_frames = 64", "chunk_frames = 0"), "out of range"),
     (("max_excursion_mm = 5.0", "max_excursion_mm = inf"), "finite"),
     (("# grid_step_mm = 1.0", "grid_step_mm = -1.0"), "out of range"),
+    (("shape_order = 1", "shape_order = 3"), "out of range"),
     (("# extent_mm = [-100.0, 100.0, -80.0, 80.0]", "extent_mm = [100.0, -100.0, 0.0, 1.0]"), "xmin < xmax"),
     (("# extent_mm = [-100.0, 100.0, -80.0, 80.0]", "extent_mm = [1, 2, 3]"), "xmin, xmax"),
     (("# exclude_circles_mm = [[0.0, 0.0, 25.0]]", "exclude_circles_mm = [[0, 0, -1]]"), "radius"),

@@ -206,7 +206,8 @@ def _state(spec: JobSpec, *, limit: bool = True) -> dict:
     segment = np.cumsum(spec.slot_flags > 0) if unusable else None
     setup = prepare_matching(rig, datum, first, spec.slot_time, window=m.get("window"), spacing=m.get("spacing"),
                              time_window=m["time_window"], max_excursion_mm=m["max_excursion_mm"],
-                             rectify_method=m["rectify"], mask_image=mask, segment=segment)
+                             rectify_method=m["rectify"], mask_image=mask, segment=segment,
+                             shape_order=m.get("shape_order", 1))
     h = spec.heights
     hsetup = prepare_heights(setup.grid_u, setup.grid_v, rig, datum, step=h.get("grid_step_mm"),
                              extent=h.get("extent_mm"), circles=h.get("circles", ()),

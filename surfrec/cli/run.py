@@ -123,7 +123,8 @@ def _run(run_file, workers, scheduler, security_path, strict_rig, force):
         polygons.extend(read_polygons(pf))
     match_opts = {"window": v.get("match.window"), "spacing": v.get("match.spacing"),
                   "time_window": v["match.time_window"], "max_excursion_mm": v["match.max_excursion_mm"],
-                  "rectify": v["match.rectify"], "mask": str(v["match.mask"]) if v.get("match.mask") else None}
+                  "rectify": v["match.rectify"], "shape_order": v["match.shape_order"],
+                  "mask": str(v["match.mask"]) if v.get("match.mask") else None}
     heights_opts = {"grid_step_mm": v.get("heights.grid_step_mm"), "extent_mm": v.get("heights.extent_mm"),
                     "circles": [list(c) for c in v["heights.exclude_circles_mm"]],
                     "polygons": [p.tolist() for p in polygons], "still_correction": v["heights.still_correction"]}
