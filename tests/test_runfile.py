@@ -1,7 +1,6 @@
 """run.toml reading and validation (surfrec.io.runfile), against tomllib, the standard library's TOML reader."""
 
 import tomllib
-from pathlib import Path
 
 import pytest
 

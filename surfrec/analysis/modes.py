@@ -233,7 +233,6 @@ def polar_grid(r1: float, r2: float, step: float, k_max_order: float):
 
 def _lagrange_weights(t, p):
     """Weights (..., p) of p-point Lagrange interpolation at offsets t in [p/2-1, p/2) of nodes 0..p-1."""
-    nodes = np.arange(p)
     w = np.ones(t.shape + (p,))
     for i in range(p):
         for j in range(p):

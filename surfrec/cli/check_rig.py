@@ -106,6 +106,6 @@ def _report(result, rig_path, size) -> str:
         state = "in step" if s.in_step else f"out of step by {abs(s.offset)} frames"
         lines.append(f"synchronisation: {state} (correlation {best:.2f} at offset {s.offset:+d}; others {others})")
     else:
-        lines.append(f"synchronisation: cannot be told (correlation by frame offset: "
+        lines.append("synchronisation: cannot be told (correlation by frame offset: "
                      + ", ".join(f"{k:+d}: {v:.2f}" for k, v in sorted(s.scores.items())) + ")")
     return "\n".join(lines)

@@ -354,8 +354,6 @@ def _chunk_record(k, a, b, res, info, level0, drift_mm):
 
 
 def _first_level(journal, done):
-    import numpy as np
-
     if 0 not in done:
         return None
     info = journal.read_info(0)   # None when damaged: the assembly finds it again; the drift check starts later
