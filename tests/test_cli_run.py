@@ -140,6 +140,37 @@ def test_dask_local_cluster_equals_the_local_pool(prepared, tmp_path):
     assert_same(tmp_path / "heights.h5", w / "ref.h5")
 
 
+def test_dask_local_cluster_over_tls(prepared, tmp_path):
+    # Dask's TLS settings (distributed.Security) from our --cluster-security file, with a self-signed
+    # certificate made by the openssl command-line tool: the run goes over tls:// and gives the result
+    # of the local pool; a file naming a missing certificate is one clear line, exit status 2.
+    pytest.importorskip("distributed")
+    import shutil
+    if shutil.which("openssl") is None:
+        pytest.skip("openssl is not installed")
+    certs = tmp_path / "certs"
+    certs.mkdir()
+    made = subprocess.run(["openssl", "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-subj", "/CN=localhost",
+                           "-days", "2", "-keyout", str(certs / "key.pem"), "-out", str(certs / "cert.pem"),
+                           "-addext", "subjectAltName=DNS:localhost,IP:127.0.0.1"], capture_output=True)
+    if made.returncode != 0:
+        pytest.skip("openssl could not make a test certificate")
+    sec = certs / "tls.toml"
+    sec.write_text('ca_file = "cert.pem"\ncert = "cert.pem"\nkey = "key.pem"\n')
+    w = prepared["work"]
+    rf = write_run(tmp_path / "run.toml", w, left=f"@{w / 'left.txt'}", right=f"@{w / 'right.txt'}",
+                   out=str(tmp_path / "heights.h5"), batch="chunk_frames = 9")
+    res = run("run", rf, "--scheduler", "local", "--workers", 2, "--cluster-security", sec)
+    assert res.returncode == 0, res.stderr
+    assert "tls://" in (tmp_path / "heights.log").read_text()
+    assert_same(tmp_path / "heights.h5", w / "ref.h5")
+    bad = certs / "bad.toml"
+    bad.write_text('ca_file = "nowhere.pem"\ncert = "cert.pem"\nkey = "key.pem"\n')
+    res = run("run", rf, "--scheduler", "local", "--cluster-security", bad, "--force", "-q")
+    assert res.returncode == 2 and "nowhere.pem" in res.stderr and len(res.stderr.strip().splitlines()) == 1
+    assert_same(tmp_path / "heights.h5", w / "ref.h5")  # the finished output is untouched
+
+
 def _readable_or_absent(path):
     if path.exists():
         with h5py.File(path, "r") as f:           # a reader must always be able to open it
