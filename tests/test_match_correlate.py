@@ -45,6 +45,13 @@ def test_zncc_equals_skimage_match_template():
             win = right[v - hw:v + hw + 1, u - d - hw:u - d + hw + 1]
             ref = match_template(win.astype(np.float64), tpl.astype(np.float64))[0, 0]
             assert scores[p, k] == pytest.approx(ref, abs=1e-5)
+    # Points in any order (the search groups them by row internally), two of them in one row.
+    us2, vs2, c2 = np.array([80, 40, 60, 70]), np.array([50, 30, 40, 30]), np.array([6, 5, 4, 5])
+    _, _, scores2 = integer_search(left, right, us2, vs2, c2, band, 2 * hw + 1)
+    np.testing.assert_allclose(scores2[:3], scores[[2, 0, 1]], atol=1e-9)
+    tpl = left[30 - hw:30 + hw + 1, 70 - hw:70 + hw + 1]
+    win = right[30 - hw:30 + hw + 1, 70 - 5 - hw:70 - 5 + hw + 1]
+    assert scores2[3, band] == pytest.approx(match_template(win, tpl)[0, 0], abs=1e-5)
 
 
 @pytest.mark.parametrize("order", [3, 5])

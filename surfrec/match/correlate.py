@@ -67,16 +67,22 @@ def integer_search(left, right, us, vs, centre, halfwidth: int, window: int):
     """
     left, right = _stack(left), _stack(right)
     us, vs, centre = (np.ascontiguousarray(a, dtype=np.int64).ravel() for a in (us, vs, centre))
-    # The kernel works a grid row at a time (windows of one row share their column sums).
-    order = np.lexsort((us, vs))
-    vs_sorted = vs[order]
+    # The kernel works a grid row at a time (windows of one row share their column sums), so the
+    # points must come grouped by row; a grid flattened row by row already is.
+    in_rows = bool(np.all(vs[1:] >= vs[:-1]))
+    order = None if in_rows else np.lexsort((us, vs))
+    vs_sorted = vs if in_rows else vs[order]
     row_start = np.concatenate([[0], np.nonzero(np.diff(vs_sorted))[0] + 1, [vs.size]]).astype(np.int64)
     sorted_scores = np.empty((us.size, 2 * halfwidth + 1))
     if us.size:
-        kernels.zncc_search(left, right, us[order], vs_sorted, centre[order], row_start, int(halfwidth),
+        kernels.zncc_search(left, right, us if in_rows else us[order], vs_sorted,
+                            centre if in_rows else centre[order], row_start, int(halfwidth),
                             int(window) // 2, sorted_scores)
-    scores = np.empty_like(sorted_scores)
-    scores[order] = sorted_scores
+    if in_rows:
+        scores = sorted_scores
+    else:
+        scores = np.empty_like(sorted_scores)
+        scores[order] = sorted_scores
     k = np.argmax(scores, axis=1)
     best = scores[np.arange(us.size), k]
     d = (centre - halfwidth + k).astype(float)
