@@ -35,6 +35,7 @@ import h5py
 import numpy as np
 
 from surfrec.errors import InputError
+from surfrec.io.hdf5file import open_checked
 from surfrec.geometry.datum import Datum
 from surfrec.io.outputs import atomic_file
 
@@ -118,20 +119,8 @@ def read_datum(path) -> Datum:
         is not rigid or disagrees with the plane.
     """
     p = Path(path)
-    if not p.exists():
-        raise InputError(f"datum file {p} does not exist")
-    try:
-        f = h5py.File(p, "r")
-    except OSError as exc:
-        raise InputError(f"datum file {p} is not a readable HDF5 file ({exc})") from None
     src = f"datum file {p}"
-    with f:
-        fmt = _text(f.attrs.get("format"))
-        if fmt != FORMAT:
-            raise InputError(f"{src}: 'format' is {fmt!r}, expected {FORMAT!r}")
-        version = _plain(f.attrs.get("version"))
-        if not isinstance(version, int) or version != VERSION:
-            raise InputError(f"{src}: 'version' is {version!r}; this surfrec reads version {VERSION}")
+    with open_checked(p, FORMAT, VERSION, "datum") as f:
         m = _attr_array(f, "world_to_left_camera", 16, src).reshape(4, 4)
         rot = m[:3, :3]
         if (not np.allclose(m[3], [0, 0, 0, 1], atol=0) or not np.allclose(rot @ rot.T, np.eye(3), atol=_ORTHO_TOL)

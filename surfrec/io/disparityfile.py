@@ -26,6 +26,7 @@ import numpy as np
 
 from surfrec._version import __version__
 from surfrec.errors import InputError
+from surfrec.io.hdf5file import open_checked
 
 FORMAT = "surfrec.disparity"
 VERSION = 1
@@ -117,15 +118,7 @@ def read_disparity(path, frames=slice(None)) -> dict:
     disparity, disparity_sigma, score for ``frames``.
     """
     p = Path(path)
-    try:
-        f = h5py.File(p, "r")
-    except (OSError, ValueError) as exc:
-        raise InputError(f"{p}: not a readable HDF5 file ({exc})") from None
-    with f:
-        if f.attrs.get("format") != FORMAT:
-            raise InputError(f"{p}: not a surfrec disparity file (format {f.attrs.get('format')!r})")
-        if int(f.attrs.get("version", -1)) != VERSION:
-            raise InputError(f"{p}: disparity file version {f.attrs.get('version')} is not supported")
+    with open_checked(p, FORMAT, VERSION, "disparity") as f:
         for key in ("u", "v", "time", "disparity", "disparity_sigma", "score", "frame_flags"):
             if key not in f:
                 raise InputError(f"{p}: missing dataset '{key}'")

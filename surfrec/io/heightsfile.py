@@ -61,6 +61,7 @@ import numpy as np
 
 from surfrec._version import __version__
 from surfrec.errors import InputError
+from surfrec.io.hdf5file import open_checked
 
 FORMAT = "surfrec.heights"
 VERSION = 1
@@ -445,19 +446,7 @@ def read_heights(path, frames=slice(None)) -> dict:
         shapes disagree.
     """
     p = Path(path)
-    if not p.exists():
-        raise InputError(f"heights file {p} does not exist")
-    try:
-        f = h5py.File(p, "r")
-    except (OSError, ValueError) as exc:
-        raise InputError(f"{p}: not a readable HDF5 file ({exc})") from None
-    with f:
-        fmt = _plain(f.attrs.get("format"))
-        if fmt != FORMAT:
-            raise InputError(f"{p}: not a surfrec heights file (format {fmt!r})")
-        version = _plain(f.attrs.get("version"))
-        if version != VERSION:
-            raise InputError(f"{p}: heights file version {version!r} is not supported (this surfrec reads {VERSION})")
+    with open_checked(p, FORMAT, VERSION, "heights") as f:
         for key in ("time", "y", "x", "height", "height_uncertainty", "frame_flags"):
             if key not in f or not isinstance(f[key], h5py.Dataset):
                 raise InputError(f"{p}: missing variable '{key}'")

@@ -29,7 +29,7 @@ import h5py
 import numpy as np
 
 from surfrec._version import __version__
-from surfrec.errors import InputError
+from surfrec.io.hdf5file import open_checked
 
 FORMAT = "surfrec.truth"
 VERSION = 1
@@ -100,15 +100,7 @@ def read_truth(path) -> dict:
         If the file is not a readable surfrec truth file.
     """
     p = Path(path)
-    try:
-        f = h5py.File(p, "r")
-    except (OSError, ValueError) as exc:
-        raise InputError(f"{p}: not a readable HDF5 file ({exc})") from None
-    with f:
-        if f.attrs.get("format") != FORMAT:
-            raise InputError(f"{p}: not a surfrec truth file (format {f.attrs.get('format')!r})")
-        if int(f.attrs.get("version", -1)) != VERSION:
-            raise InputError(f"{p}: truth file version {f.attrs.get('version')} is not supported (expected {VERSION})")
+    with open_checked(p, FORMAT, VERSION, "truth") as f:
         out = {k: _attr(f.attrs[k]) for k in f.attrs}
         for key in ("sensor", "lighting", "board", "water", "post", "notes", "rigs"):
             out[key] = json.loads(out[key])
