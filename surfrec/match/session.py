@@ -202,16 +202,21 @@ def match_frames(setup: MatchSetup, left_frames, right_frames, frames, *, unusab
         if is_blank(here[0]) or is_blank(here[1]):
             yield FrameResult(i, nan, nan.copy(), nan.copy(), FLAG_BLANK, {})
             continue
-        lefts = np.stack([pairs[j][0] for j in idx])
-        rights = np.stack([pairs[j][1] for j in idx])
+        lefts = _stack([pairs[j][0] for j in idx])
+        rights = _stack([pairs[j][1] for j in idx])
         taus = (setup.times[idx] - setup.times[i]) / setup.dt_frame
-        coef = np.stack([cache.right_coefficients(j, p.spline_order) for j in idx])
+        coef = _stack([cache.right_coefficients(j, p.spline_order) for j in idx])
         res = match_frame(lefts, rights, taus, setup.grid_u, setup.grid_v, setup.centre, setup.band, p,
                           measure=setup.measure, right_coef=coef)
         flags = 0
         if np.isfinite(res["disparity"]).mean() < FEW_VALID_FRACTION:
             flags |= FLAG_FEW_VALID
         yield FrameResult(i, res["disparity"], res["disparity_sigma"], res["score"], flags, res["reasons"])
+
+
+def _stack(arrays):
+    # A time window of one frame needs no copy (the frames are whole images: copies cost time per frame).
+    return arrays[0][None] if len(arrays) == 1 else np.stack(arrays)
 
 
 def _int_attr(attrs, key):
