@@ -7,8 +7,6 @@ checked by decoding it with cv2.imread (a general-purpose reference library).
 """
 
 import json
-import subprocess
-import sys
 
 import cv2
 import numpy as np
@@ -17,10 +15,7 @@ import pytest
 from surfrec.io.rigfile import read_rig
 from surfrec.io.truthfile import read_truth
 from surfrec.synth.cameras import Camera, stereo_from_cameras
-
-
-def run(*args):
-    return subprocess.run([sys.executable, "-m", "surfrec.cli.main", *map(str, args)], capture_output=True, text=True)
+from cli_run import run
 
 
 @pytest.fixture(scope="module")

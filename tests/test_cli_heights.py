@@ -11,8 +11,6 @@ targets: RMS <= 0.06 mm, |bias| <= 0.01 mm, coverage >= 95%.
 
 import json
 import shutil
-import subprocess
-import sys
 
 import h5py
 import numpy as np
@@ -24,10 +22,7 @@ from surfrec.io.rigfile import file_sha256, write_rig
 from surfrec.io.truthfile import read_truth
 from surfrec.synth.cameras import Camera
 from surfrec.synth.surfaces import surface_from_dict
-
-
-def run(*args):
-    return subprocess.run([sys.executable, "-m", "surfrec.cli.main", *map(str, args)], capture_output=True, text=True)
+from cli_run import run
 
 
 @pytest.fixture(scope="module")

@@ -1,18 +1,13 @@
 """`surfrec match` as a user calls it: outputs, exit codes and messages (design.md error policy)."""
 
 import shutil
-import subprocess
-import sys
 
 import numpy as np
 import pytest
 
 from surfrec.io.disparityfile import read_disparity
 from surfrec.io.rigfile import write_rig
-
-
-def run(*args):
-    return subprocess.run([sys.executable, "-m", "surfrec.cli.main", *map(str, args)], capture_output=True, text=True)
+from cli_run import run
 
 
 @pytest.fixture(scope="module")

@@ -10,14 +10,13 @@ exact rig, then datum, match, heights): within 2% and 3 degrees for |m| <= 3.
 """
 
 import json
-import subprocess
-import sys
 
 import numpy as np
 import pytest
 
 from surfrec.waves import maccamy_fuchs_amplitude, reflection_coefficients, wavenumber
 from wave_heights import write_field
+from cli_run import run
 
 F = 5.0
 K = float(wavenumber(F, 60.0))
@@ -25,10 +24,6 @@ CENTRE = (3.0, -2.0)
 X = np.arange(-130, 130.01, 2.5)
 Y = np.arange(-110, 110.01, 2.5)
 KEYS = {"m", "incoming", "outgoing", "R_abs", "R_phase_deg", "R_abs_sigma", "R_phase_sigma_deg"}
-
-
-def run(*args):
-    return subprocess.run([sys.executable, "-m", "surfrec.cli.main", *map(str, args)], capture_output=True, text=True)
 
 
 @pytest.fixture(scope="module")

@@ -1,29 +1,12 @@
 """`surfrec preview` as a user calls it: the PNG, exit codes and messages (design.md error policy)."""
 
-import subprocess
-import sys
 
 import cv2
 import numpy as np
 import pytest
 
 from synthetic_heights import write_exact_heights
-
-
-def run(*args):
-    return subprocess.run([sys.executable, "-m", "surfrec.cli.main", *map(str, args)], capture_output=True, text=True)
-
-
-def run_here(*args):
-    """The same command in this process (click's CliRunner; the group's error policy applies the same),
-    for the many bad-input cases: a fresh interpreter for each would cost a second apiece."""
-    from click.testing import CliRunner
-
-    from surfrec.cli.main import cli
-
-    r = CliRunner().invoke(cli, [str(a) for a in args])
-    r.returncode = r.exit_code
-    return r
+from cli_run import run, run_here
 
 
 @pytest.fixture(scope="module")

@@ -10,8 +10,6 @@ share its |k|).
 
 import csv
 import json
-import subprocess
-import sys
 
 import numpy as np
 import pytest
@@ -19,14 +17,11 @@ from scipy import signal
 
 from surfrec.waves import wavenumber
 from wave_heights import write_field
+from cli_run import run
 
 F = 7.0
 X = np.arange(-60, 60.01, 2.0)
 Y = np.arange(-40, 40.01, 2.0)
-
-
-def run(*args):
-    return subprocess.run([sys.executable, "-m", "surfrec.cli.main", *map(str, args)], capture_output=True, text=True)
 
 
 @pytest.fixture(scope="module")
