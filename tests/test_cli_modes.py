@@ -78,6 +78,7 @@ def test_estimates_centre_frequency_and_k(field):
 @pytest.mark.parametrize("args, message", [
     (["--radii", "25,100", "--depth", "60", "--centre=500,0"], "outside the field"),
     (["--radii", "25,200", "--depth", "60", "--centre", "3,-2"], "beyond the data"),
+    (["--radii", "25,500", "--depth", "60", "--frequency", "5"], "beyond the data"),  # no centre: fits nowhere
     (["--radii", "25,100", "--depth", "60", "--frequency", "30"], "Nyquist"),
     (["--radii", "25,100"], "--depth"),
     (["--radii", "100,25", "--depth", "60"], "R1 < R2"),

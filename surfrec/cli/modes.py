@@ -174,6 +174,9 @@ def command(heights, output, radii, depth, fit_k, centre, frequency, orders, n_b
     centre_source = "given"
     centre_info = None
     if centre is None:
+        # No centre has more room than the middle of the grid: rings that do not fit there fit nowhere,
+        # and the centre estimate needs them.
+        check_ring((0.5 * (x[0] + x[-1]), 0.5 * (y[0] + y[-1])))
         radii_g, _ = polar_grid(r1, r2, step, k0 * r2)
         centre, centre_info = estimate_centre(amp, x, y, k0, radii_g)
         if fit_k:
