@@ -73,10 +73,18 @@ def _finite(ctx, param, value):
 @click.option("--rectify", "rectify_method",
               type=click.Choice(["bspline3", "bspline5", "cubic", "lanczos4", "linear"]), default="bspline3",
               show_default=True, help="Resampling used to rectify the frames (as in `surfrec match`).")
+@click.option("--defects-left", "defects_left_path", default=None, metavar="PNG", type=click.Path(dir_okay=False),
+              help="A map of the left camera's fixed defects (hot and dead pixels), an image of the camera's "
+                   "size, non-zero = defective; added to the defects found in the still frames.")
+@click.option("--defects-right", "defects_right_path", default=None, metavar="PNG", type=click.Path(dir_okay=False),
+              help="The same for the right camera.")
+@click.option("--find-defects/--no-find-defects", default=True, show_default=True,
+              help="Find each camera's hot and dead pixels in the still frames (pixels that do not follow the "
+                   "changing speckle) and store them in the datum, for `surfrec match` to leave out.")
 @force_option
 @verbosity
 def command(rig_path, left, right, output, origin, rotate_deg, window, spacing, residual_degree, residual_step,
-            rectify_method, force):
+            rectify_method, defects_left_path, defects_right_path, find_defects, force):
     """Define the still-water datum from a few frames of still water.
 
     Rectifies the frames, finds the disparity field with a wide search (no
@@ -89,7 +97,9 @@ def command(rig_path, left, right, output, origin, rotate_deg, window, spacing, 
     stores the reference disparity on the grid (for `surfrec match`), the
     smooth shape by which the still water departs from the plane (the
     still-water residual, subtracted by `surfrec heights`) and the per-point
-    scatter across frames (the rig's noise floor).
+    scatter across frames (the rig's noise floor). Each camera's fixed
+    defects (hot and dead pixels) are found in the still frames and stored
+    too; saturated pixels and defects never enter a correlation window.
 
     Reports the plane-fit RMS, the size of the residual shape and the median
     noise floor (mm), and warns when they suggest that the water moved or
@@ -106,6 +116,7 @@ def command(rig_path, left, right, output, origin, rotate_deg, window, spacing, 
     from surfrec.io.outputs import check_output
     from surfrec.io.rigfile import file_sha256, read_rig
     from surfrec.match.prior import match_frames_on_grid, matching_grid, pyramid_level, valid_region, wide_search
+    from surfrec.match.defects import HALO_PX, SATURATION, DefectSettings, prepare_frame
     from surfrec.match.rectification import FrameRectifier
     from surfrec.match.speckle import default_window, speckle_size_px
 
@@ -123,7 +134,15 @@ def command(rig_path, left, right, output, origin, rotate_deg, window, spacing, 
     rectifier = FrameRectifier(rig, rectify_method)
     valid_left = valid_region(*rectifier.maps["left"], rig.image_size)
     valid_right = valid_region(*rectifier.maps["right"], rig.image_size)
-    first = [(rectifier.left(lf[i]), rectifier.right(rf[i])) for i in range(min(n, WIDE_SEARCH_FRAMES))]
+    defects = _fixed_defects(lf, rf, rig, find_defects, defects_left_path, defects_right_path)
+    settings = DefectSettings(SATURATION, HALO_PX, defects["left"], defects["right"])
+
+    def prepared(i):
+        (a, bad_a), (b, bad_b) = (prepare_frame(lf[i], "left", rectifier, settings),
+                                  prepare_frame(rf[i], "right", rectifier, settings))
+        return a, b, bad_a, bad_b
+
+    first = [prepared(i) for i in range(min(n, WIDE_SEARCH_FRAMES))]
     speckle = speckle_size_px(lf[0])  # on the original frame, as `match` measures it, so both pick one window
     window = window or default_window(speckle)
     level = pyramid_level(speckle)
@@ -134,7 +153,7 @@ def command(rig_path, left, right, output, origin, rotate_deg, window, spacing, 
     log.info("datum from %d still frame pairs of %dx%d px: speckle %.1f px, window %d px, grid %dx%d "
              "(spacing %d px)", n, *rig.image_size, speckle, window, grid_u.size, grid_v.size, spacing)
     try:
-        prior = wide_search(np.stack([a for a, _ in first]), np.stack([b for _, b in first]), level=level,
+        prior = wide_search(np.stack([p[0] for p in first]), np.stack([p[1] for p in first]), level=level,
                             valid_left=valid_left, valid_right=valid_right)
     except ValueError as exc:
         raise InputError(f"still frames ({lf.names[0]} ...): no disparity field found ({exc})") from None
@@ -145,7 +164,7 @@ def command(rig_path, left, right, output, origin, rotate_deg, window, spacing, 
     def pairs():
         # The first frames are rectified already; the others one at a time, as they are matched.
         for i in range(n):
-            yield first[i] if i < len(first) else (rectifier.left(lf[i]), rectifier.right(rf[i]))
+            yield first[i] if i < len(first) else prepared(i)
 
     with Progress(n, "matching still frames") as progress:
         matches = match_frames_on_grid(pairs(), grid_u, grid_v, prior, window, progress=progress,
@@ -162,6 +181,7 @@ def command(rig_path, left, right, output, origin, rotate_deg, window, spacing, 
     seconds = time.monotonic() - t0
     datum = fit.datum
     datum.rig_sha256 = rig_hash
+    datum.defects_left, datum.defects_right = defects["left"], defects["right"]
     datum.attrs = {
         "software": f"surfrec {__version__}",
         "created": _now(),
@@ -174,6 +194,11 @@ def command(rig_path, left, right, output, origin, rotate_deg, window, spacing, 
         "rectify_method": rectify_method, "spline_order": 5, "min_score": 0.6, "max_sigma_px": 0.2,
         "wide_search_level": int(prior.level), "wide_search_points": int(prior.n_coarse),
         "wide_search_used": int(prior.n_used), "band_px": int(prior.band_px),
+        "saturation": SATURATION, "halo_px": HALO_PX,
+        "defects_left": int(defects["left"].sum()) if defects["left"] is not None else 0,
+        "defects_right": int(defects["right"].sum()) if defects["right"] is not None else 0,
+        "defects_found_in_still_frames": int(bool(find_defects)),
+        "defects_left_file": str(defects_left_path or ""), "defects_right_file": str(defects_right_path or ""),
         **{f"rejected_{k}": int(v) for k, v in matches.reasons.items()},
         **datum.attrs,
         "seconds": round(seconds, 3),
@@ -183,6 +208,37 @@ def command(rig_path, left, right, output, origin, rotate_deg, window, spacing, 
         log.warning("warning: %s", w)
     log.info("made the datum in %.1f s", seconds)
     click.echo(_report(fit, rig_path, rig.image_size, window, spacing, out))
+
+
+def _fixed_defects(lf, rf, rig, find, left_path, right_path):
+    """Each camera's fixed defect map: found in the still frames and/or read from the user's maps."""
+    import numpy as np
+
+    from surfrec.errors import InputError
+    from surfrec.io.images import open_frames
+    from surfrec.match.defects import estimate_fixed_defects
+
+    out = {}
+    for side, frames, path in (("left", lf, left_path), ("right", rf, right_path)):
+        m = None
+        if find and len(frames) >= 2:
+            m = estimate_fixed_defects(np.stack([frames[i] for i in range(len(frames))]))
+        elif find:
+            log.warning("warning: one still frame pair only: hot and dead pixels cannot be told from speckle "
+                        "(give two or more frames, or --defects-%s)", side)
+        if path:
+            given = open_frames(path, expected_size=rig.image_size, name=f"{side} defect map")
+            if len(given) != 1:
+                raise InputError(f"{side} defect map {path}: expected one image, found {len(given)}")
+            g = given.read_raw(0) != 0
+            if g.mean() > 0.05:
+                raise InputError(f"{side} defect map {path}: marks {100 * g.mean():.1f}% of the pixels defective "
+                                 "(non-zero = defective; more than 5% is not a defect map)")
+            m = g if m is None else (m | g)
+        if m is not None:
+            log.info("%s camera: %d fixed defects (hot or dead pixels)", side, int(m.sum()))
+        out[side] = m
+    return out
 
 
 def _prior_range(prior, u, v):

@@ -99,6 +99,8 @@ class Datum:
     attrs : parameters and provenance (software, created, window, spacing, ...).
     point_residual : (Nv, Nu) mm or None, the per-point height above the
         plane averaged over frames (the data the smooth shape was fitted to).
+    defects_left, defects_right : (H, W) bool or None, each camera's fixed
+        defects (hot and dead pixels, original image px), applied by ``match``.
     """
 
     world_to_left_camera: np.ndarray
@@ -117,6 +119,8 @@ class Datum:
     rig_sha256: str
     attrs: dict = field(default_factory=dict)
     point_residual: np.ndarray | None = None
+    defects_left: np.ndarray | None = None
+    defects_right: np.ndarray | None = None
 
     @property
     def left_camera_to_world(self) -> np.ndarray:

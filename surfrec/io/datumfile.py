@@ -19,7 +19,10 @@ datasets
     (1 = valid); noise_floor (Nv, Nu) float64 mm, NaN where unknown;
     point_residual (Nv, Nu) float64 mm (height above the plane per grid point,
     averaged over frames); residual_x (Mx), residual_y (My) float64 datum-frame
-    mm; still_residual (My, Mx) float64 mm, NaN outside the measured footprint.
+    mm; still_residual (My, Mx) float64 mm, NaN outside the measured footprint;
+    optional defects_left, defects_right (H, W) uint8, 1 at each camera's
+    fixed defects (hot and dead pixels, original image px), which ``match``
+    leaves out of every correlation window.
 
 Writing is atomic (a temporary file beside the target, renamed when
 complete); reading validates format, version, shapes and finiteness and
@@ -57,11 +60,15 @@ _DATASETS = {
     "residual_y": ("mm", "datum-frame y of the still-residual grid"),
     "still_residual": ("mm", "smooth departure of the still water from the plane (height), NaN outside the "
                              "measured footprint; subtracted by the heights stage"),
+    "defects_left": ("1", "1 at the left camera's fixed defects (hot, dead pixels), original image px"),
+    "defects_right": ("1", "1 at the right camera's fixed defects (hot, dead pixels), original image px"),
 }
 
 # Tolerances of the geometric consistency checks: far above float64 rounding
 # of numbers of order 1000 mm, far below anything that could matter.
 _ORTHO_TOL = 1e-6
+# A defect map marking more of the sensor than this is not one (a real sensor has well below 1%).
+MAX_DEFECT_FRACTION = 0.05
 _OFFSET_TOL_MM = 1e-6
 
 
@@ -95,9 +102,13 @@ def write_datum(path, datum: Datum) -> None:
                       "still_residual": datum.still_residual}
             if datum.point_residual is not None:
                 arrays["point_residual"] = datum.point_residual
+            for side in ("left", "right"):
+                m = getattr(datum, f"defects_{side}")
+                if m is not None:
+                    arrays[f"defects_{side}"] = np.asarray(m, bool).astype(np.uint8)
             for key, value in arrays.items():
                 a = np.asarray(value)
-                a = a if key == "valid" else a.astype(np.float64)
+                a = a if a.dtype == np.uint8 else a.astype(np.float64)
                 opts = {"compression": "gzip", "shuffle": True} if a.ndim == 2 else {}
                 ds = f.create_dataset(key, data=a, **opts)
                 ds.attrs["units"], ds.attrs["long_name"] = _DATASETS[key]
@@ -166,11 +177,25 @@ def read_datum(path) -> Datum:
         residual = _dataset(f, "still_residual", (ry.size, rx.size), src)
         if np.any(np.isinf(residual)) or not np.isfinite(residual).any():
             raise InputError(f"{src}: 'still_residual' must be finite inside the footprint (NaN outside)")
+        defects = {}
+        for side in ("left", "right"):
+            key = f"defects_{side}"
+            if key in f:
+                ds = f[key]
+                if not isinstance(ds, h5py.Dataset) or ds.ndim != 2 or ds.shape[0] < 1 or ds.shape[1] < 1:
+                    raise InputError(f"{src}: {key!r} must be a 2-D image-sized dataset")
+                a = ds[()]
+                if not np.all((a == 0) | (a == 1)):
+                    raise InputError(f"{src}: {key!r} must hold 0 and 1 only")
+                if a.mean() > MAX_DEFECT_FRACTION:
+                    raise InputError(f"{src}: {key!r} marks {100 * a.mean():.1f}% of the pixels defective "
+                                     f"(more than {100 * MAX_DEFECT_FRACTION:g}%: not a defect map)")
+                defects[key] = a.astype(bool)
         attrs = {k: _plain(f.attrs[k]) for k in f.attrs if k not in _CORE_ATTRS}
     return Datum(world_to_left_camera=m, plane_normal=normal, plane_offset=offset, u=u, v=v, disparity=disparity,
                  valid=valid, residual_x=rx, residual_y=ry, still_residual=residual, noise_floor=noise,
                  fit_rms_mm=float(fit_rms), n_frames=int(n_frames), rig_sha256=sha, attrs=attrs,
-                 point_residual=point_residual)
+                 point_residual=point_residual, **defects)
 
 
 def _attr_value(key, value):

@@ -98,7 +98,8 @@ def integer_search(left, right, us, vs, centre, halfwidth: int, window: int):
 
 
 def refine(left, right_coef, us, vs, d0, window: int, *, order: int = 5, taus=None, temporal: bool = False,
-           shape_order: int = 1, max_iter: int = 20, tol: float = 1e-3):
+           shape_order: int = 1, max_iter: int = 20, tol: float = 1e-3, bad_left=None, bad_right=None,
+           min_good: float = 0.5):
     """IC-GN refinement from the starting disparities d0 (px).
 
     Parameters
@@ -115,6 +116,12 @@ def refine(left, right_coef, us, vs, d0, window: int, *, order: int = 5, taus=No
         solution): 1e-3 px leaves the result within 4e-4 px (RMS 1.4e-5 px)
         of the fully converged one on the default synthetic session — a
         twentieth of the random error — and saves about one iteration in six.
+    bad_left, bad_right : (T, H, W) bool/uint8 or None, rectified pixels that must not enter
+        the window sums (saturated, hot, dead, with their halo; surfrec.match.defects). A
+        template pixel is left out where the left frame is bad or where its right partner, at
+        the starting disparity, is.
+    min_good : fraction of a window's pixels that must be good in every frame; points with
+        fewer come back with iterations = -2.
 
     Returns
     -------
@@ -134,24 +141,46 @@ def refine(left, right_coef, us, vs, d0, window: int, *, order: int = 5, taus=No
     start = np.where(np.isfinite(d0), d0, 0.0)
     left_gx = np.empty(left.shape)
     kernels.row_gradient(left, left_gx)
+    masked = bad_left is not None or bad_right is not None
+    if masked:
+        bl = _mask_stack(bad_left, left.shape)
+        br = _mask_stack(bad_right, left.shape)
+    else:
+        bl = br = _NO_MASK
     kernels.icgn_refine(left, left_gx, right_coef, taus, np.ascontiguousarray(us, dtype=np.int64),
                         np.ascontiguousarray(vs, dtype=np.int64), start, int(window) // 2, int(order),
                         int(max_iter), float(tol), bool(temporal and T > 1), shape_order == 2,
-                        out_d, out_p, out_sigma, out_score, out_iter)
+                        bl, br, masked, float(min_good), out_d, out_p, out_sigma, out_score, out_iter)
     out_d[~np.isfinite(d0)] = np.nan
     return out_d, out_p, out_sigma, out_score, out_iter
 
 
 def match_points(left, right, us, vs, centre, halfwidth: int, window: int, *, order: int = 5, taus=None,
-                 temporal: bool = False, right_coef=None) -> PointMatches:
-    """Integer search then IC-GN refinement for each grid point (see module docstring)."""
+                 temporal: bool = False, right_coef=None, bad_left=None, bad_right=None) -> PointMatches:
+    """Integer search then IC-GN refinement for each grid point (see module docstring).
+
+    bad_left, bad_right : rectified bad-pixel masks or None (see :func:`refine`).
+    """
     left, right = _stack(left), _stack(right)
     if right_coef is None:
         right_coef = row_spline_coefficients(right, order)
     d_int, s_int, _ = integer_search(left, right, us, vs, centre, halfwidth, window)
     d, params, sigma, score, iters = refine(left, right_coef, us, vs, d_int, window, order=order, taus=taus,
-                                            temporal=temporal)
+                                            temporal=temporal, bad_left=bad_left, bad_right=bad_right)
     return PointMatches(d, sigma, score, params[:, 1:], iters, s_int)
+
+
+_NO_MASK = np.zeros((1, 1, 1), np.uint8)
+
+
+def _mask_stack(mask, shape):
+    if mask is None:
+        return np.zeros(shape, np.uint8)
+    m = np.asarray(mask)
+    m = m[None] if m.ndim == 2 else m
+    if m.shape != tuple(shape):
+        raise ValueError(f"bad-pixel mask of shape {m.shape} does not fit the frames {tuple(shape)}")
+    return np.ascontiguousarray(m, dtype=np.uint8)
 
 
 def _stack(a):

@@ -327,7 +327,7 @@ _TERM_K = np.array([1.0, 1.0, 1.0, 1.0, 0.5, 1.0, 0.5])
 
 @njit(parallel=True, cache=True, fastmath=_FAST)
 def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, temporal, second,
-                out_d, out_p, out_sigma, out_score, out_iter):
+                bad_left, bad_right, masked, min_good, out_d, out_p, out_sigma, out_score, out_iter):
     """Inverse-compositional Gauss–Newton refinement of each point's disparity.
 
     Shape function (horizontal; first order, or second order with
@@ -360,11 +360,20 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
     hw : window half-size.  order : 3 or 5.  max_iter, tol (px) : stopping rule.
     temporal : bool, estimate a3 (only meaningful for T > 1).
     second : bool, include the second-order terms a4..a6.
+    bad_left, bad_right : uint8 (T, H, W), non-zero at pixels that must not enter the sums
+        (saturated, hot, dead and their halo), rectified; read only when ``masked``.
+    masked : bool, use the masks. A template pixel is left out when it is bad in the left
+        frame or when its partner in the right frame, at the starting disparity, is; every
+        window sum then runs over the good pixels only (binary weights, so the sums keep
+        their form with the window's pixel count replaced by the good count).
+    min_good : fraction of a window's pixels that must be good in every frame, else the
+        point is rejected with out_iter = -2.
 
     Outputs (N,): out_d disparity px (NaN when not converged or outside);
     out_p (N, 4) the shape parameters [d, d_u, d_v, d_t]; out_sigma the
     1-sigma of d from the Gauss–Newton normal matrix and the residual, px;
-    out_score the ZNCC at the solution; out_iter iterations used (-1 failed).
+    out_score the ZNCC at the solution; out_iter iterations used (-1 failed, -2 too few
+    good pixels in the window).
     """
     T, H, W = left.shape
     n = us.shape[0]
@@ -401,10 +410,14 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
         sums = np.zeros(7)
         scale = np.empty(T)  # 1 / norm of each frame's zero-mean template
         offs = np.zeros(sidep)
-        keep = np.zeros(sidep)
         for dx in range(side):
             offs[dx] = dx - hw
-            keep[dx] = 1.0
+        # Per-pixel weights of the window (1 good, 0 bad or the row's padding) and the good count.
+        wt = np.zeros((T, side, sidep))
+        meff = np.empty(T)
+        if not masked:
+            wt[:, :, :side] = 1.0
+            meff[:] = m
         for p in range(c * chunk, min(n, (c + 1) * chunk)):
             u = us[p]
             v = vs[p]
@@ -418,13 +431,34 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                 continue
             hess[:, :] = 0.0
             flat = False
+            shift = np.int64(np.floor(d0[p] + 0.5)) if d0[p] == d0[p] else np.int64(0)
+            few = False
+            if masked:
+                for t in range(T):
+                    cnt = 0.0
+                    for dy in range(side):
+                        wrow = wt[t, dy]
+                        row = v - hw + dy
+                        for dx in range(side):
+                            cl = u - hw + dx
+                            cr = cl - shift
+                            good = bad_left[t, row, cl] == 0 and 0 <= cr < W and bad_right[t, row, cr] == 0
+                            wrow[dx] = 1.0 if good else 0.0
+                            cnt += wrow[dx]
+                    meff[t] = cnt
+                    if cnt < min_good * m or cnt < npar + 3:
+                        few = True
+            if few:
+                out_iter[p] = -2
+                continue
             for t in range(T):
                 s = 0.0
                 for dy in range(side):
                     lrow = left[t, v - hw + dy, u - hw:u + hw + 1]
+                    wrow = wt[t, dy]
                     for dx in range(side):
-                        s += lrow[dx]
-                mean = s / m
+                        s += lrow[dx] * wrow[dx]
+                mean = s / meff[t]
                 ss = 0.0
                 for j in range(7):
                     A[t, j] = 0.0
@@ -452,9 +486,10 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                     grow = left_gx[t, row, u - hw:u + hw + 1]
                     frow = fn[t, dy]
                     gxrow = gx[t, dy]
+                    wrow = wt[t, dy]
                     for dx in range(side):
-                        f = lrow[dx] - mean
-                        g = grow[dx]
+                        f = (lrow[dx] - mean) * wrow[dx]
+                        g = grow[dx] * wrow[dx]
                         frow[dx] = f
                         gxrow[dx] = g
                         ss += f * f
@@ -590,6 +625,7 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                         crow = right_coef[t, row]
                         grow = gx[t, dy]
                         frow = fn[t, dy]
+                        wrow = wt[t, dy]
                         i0 = np.uint64(max(xa + e_min, 0.0))
                         if order == 3 and xa + e_min >= 1.0 and np.uint64(xa + e_max) == i0 and \
                                 i0 + np.uint64(sidep + 2) <= np.uint64(W):
@@ -605,7 +641,7 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                                 f3 = f2 * f
                                 val = (g * g * g * seg[dx] + (3.0 * f3 - 6.0 * f2 + 4.0) * seg[dx + 1]
                                        + (-3.0 * f3 + 3.0 * f2 + 3.0 * f + 1.0) * seg[dx + 2]
-                                       + f3 * seg[dx + 3]) * (keep[dx] / 6.0)
+                                       + f3 * seg[dx + 3]) * (wrow[dx] / 6.0)
                                 sg += val
                                 sgg += val * val
                                 q = grow[dx] * val
@@ -623,6 +659,7 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                                     val = _spline3_at(crow, x)
                                 else:
                                     val = _spline5_at(crow, x)
+                                val *= wrow[dx]
                                 sg += val
                                 sgg += val * val
                                 q = grow[dx] * val
@@ -639,13 +676,13 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                         s6 += 0.5 * ody * ody * r0
                     if bad:
                         break
-                    ss = sgg - sg * sg / m
+                    ss = sgg - sg * sg / meff[t]
                     if ss <= _EPS:
                         bad = True
                         break
                     inv = scale[t]
                     norm = np.sqrt(ss)
-                    mean = sg / m
+                    mean = sg / meff[t]
                     sums[0] = s0
                     sums[1] = s1
                     sums[2] = s2
@@ -703,6 +740,8 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
             out_score[p] = 1.0 - ssd / (2.0 * T)
             # Residual variance per pixel in normalised units (mean and scale per frame, and
             # the shape parameters, are fitted), times the inverse normal matrix.
-            dof = T * (m - 2) - npar
+            dof = -npar
+            for t in range(T):
+                dof += meff[t] - 2.0
             out_sigma[p] = np.sqrt(max(ssd, 0.0) / dof * hinv[0, 0])
             out_iter[p] = it

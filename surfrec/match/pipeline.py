@@ -126,16 +126,22 @@ def time_window_indices(i: int, n: int, time_window: int):
 class RectifiedCache:
     """Keeps the rectified frames of the current time windows (bounded memory)."""
 
-    def __init__(self, rectifier, left_frames, right_frames, keep: int):
+    def __init__(self, rectifier, left_frames, right_frames, keep: int, defects=None):
         self.rectifier = rectifier
+        self.defects = defects
         self.left_frames = left_frames
         self.right_frames = right_frames
         self.keep = max(1, keep)
         self.store = OrderedDict()
 
     def get(self, i):
-        """(left, right) rectified float32 frames of frame i."""
+        """(left, right) rectified float32 frames of frame i (bad pixels filled)."""
         return self._entry(i)[:2]
+
+    def bad(self, i):
+        """(left, right) rectified uint8 bad-pixel masks of frame i (None where a frame has none)."""
+        e = self._entry(i)
+        return e[3], e[4]
 
     def right_coefficients(self, i, order: int):
         """Row B-spline coefficients of frame i's rectified right image, computed once per frame
@@ -147,16 +153,18 @@ class RectifiedCache:
 
     def _entry(self, i):
         if i not in self.store:
-            left = self.rectifier.left(self.left_frames[i])
-            right = self.rectifier.right(self.right_frames[i])
-            self.store[i] = [left, right, None]
+            from surfrec.match.defects import prepare_frame
+
+            left, bad_left = prepare_frame(self.left_frames[i], "left", self.rectifier, self.defects)
+            right, bad_right = prepare_frame(self.right_frames[i], "right", self.rectifier, self.defects)
+            self.store[i] = [left, right, None, bad_left, bad_right]
             while len(self.store) > self.keep:
                 self.store.popitem(last=False)
         return self.store[i]
 
 
 def match_frame(lefts, rights, taus, grid_u, grid_v, centre, band, params: MatchParams, *, measure=None,
-                right_coef=None):
+                right_coef=None, bad_left=None, bad_right=None):
     """Match one frame (or one spatio-temporal stack) on the grid.
 
     Parameters
@@ -168,6 +176,8 @@ def match_frame(lefts, rights, taus, grid_u, grid_v, centre, band, params: Match
     band : half-width of the integer search, px.
     measure : (Nv, Nu) bool or None, points allowed by the mask.
     right_coef : (T, H, W) row B-spline coefficients of ``rights`` when already at hand.
+    bad_left, bad_right : (T, H, W) uint8 rectified bad-pixel masks, or None
+        (surfrec.match.defects): those pixels never enter a window's sums.
 
     Returns
     -------
@@ -186,14 +196,16 @@ def match_frame(lefts, rights, taus, grid_u, grid_v, centre, band, params: Match
     coef = right_coef if right_coef is not None else row_spline_coefficients(rights, params.spline_order)
     temporal = lefts.shape[0] > 1
     d, p, sigma, score, iters = refine(lefts, coef, us, vs, d_int, params.window, order=params.spline_order,
-                                       taus=taus, temporal=temporal, shape_order=params.shape_order)
+                                       taus=taus, temporal=temporal, shape_order=params.shape_order,
+                                       bad_left=bad_left, bad_right=bad_right)
     shape = uu.shape
     out_d = np.full(shape, np.nan)
     out_s = np.full(shape, np.nan)
     out_c = np.full(shape, np.nan)
     out_d[ok], out_s[ok], out_c[ok] = d, sigma, score
     reasons = {"masked_or_outside": int((~ok).sum()), "no_integer_peak": int(np.sum(~np.isfinite(d_int))),
-               "not_converged": int(np.sum(np.isfinite(d_int) & (iters < 0)))}
+               "bad_pixels": int(np.sum(np.isfinite(d_int) & (iters == -2))),
+               "not_converged": int(np.sum(np.isfinite(d_int) & (iters == -1)))}
     low = np.isfinite(out_d) & (out_c < params.min_score)
     big = np.isfinite(out_d) & ~(out_s <= params.max_sigma_px)
     out_d[low | big] = np.nan

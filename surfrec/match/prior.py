@@ -187,7 +187,7 @@ def wide_search(lefts, rights, *, level: int = 2, window: int = 9, step: int = 4
 
 def match_frame_on_grid(left, right, grid_u, grid_v, prior: DisparityPrior, window: int, *, valid_left=None,
                         valid_right=None, min_score: float = 0.6, max_sigma_px: float = 0.2,
-                        order: int = 5) -> FrameMatches:
+                        order: int = 5, bad_left=None, bad_right=None) -> FrameMatches:
     """Match one rectified frame pair on the grid in a band about the prior.
 
     Parameters
@@ -197,6 +197,8 @@ def match_frame_on_grid(left, right, grid_u, grid_v, prior: DisparityPrior, wind
     prior : the disparity field from :func:`wide_search`.
     window : odd window side, px.
     valid_left, valid_right : (H, W) bool or None (:func:`valid_region`).
+    bad_left, bad_right : (H, W) uint8 rectified bad-pixel masks or None
+        (surfrec.match.defects): left out of every window's sums.
     min_score : ZNCC below which a point is invalid.
     max_sigma_px : points with a larger estimated 1-sigma are invalid, px.
     order : B-spline order of the sub-pixel interpolation (3 or 5).
@@ -220,10 +222,12 @@ def match_frame_on_grid(left, right, grid_u, grid_v, prior: DisparityPrior, wind
     us, vs = uu[ok], vv[ok]
     c = c_all[ok]
     right_coef = row_spline_coefficients(right, order)
-    m: PointMatches = match_points(left, right, us, vs, c, band, window, order=order, right_coef=right_coef)
+    m: PointMatches = match_points(left, right, us, vs, c, band, window, order=order, right_coef=right_coef,
+                                   bad_left=bad_left, bad_right=bad_right)
     d = m.disparity.copy()
     bad_fit = ~np.isfinite(d) | (m.iterations < 0)
-    reasons["no_match"] = int(bad_fit.sum())
+    reasons["bad_pixels"] = int(np.sum(m.iterations == -2))
+    reasons["no_match"] = int(bad_fit.sum()) - reasons["bad_pixels"]
     low = ~bad_fit & ~(m.score >= min_score)
     reasons["low_score"] = int(low.sum())
     # A refinement that left the band was pulled off by something the prior does not describe.
@@ -272,8 +276,9 @@ def match_frames_on_grid(pairs, grid_u, grid_v, prior: DisparityPrior, window: i
 
     Parameters
     ----------
-    pairs : iterable of (left, right) rectified (H, W) frames; it may rectify
-        lazily, so only one pair need be in memory.
+    pairs : iterable of (left, right) rectified (H, W) frames, or of (left,
+        right, bad_left, bad_right) with rectified bad-pixel masks (or None);
+        it may rectify lazily, so only one pair need be in memory.
     grid_u, grid_v, prior, window : as for :func:`match_frame_on_grid`.
     progress : callable(n_done) or None, called after each pair.
     **options : valid_left, valid_right, min_score, max_sigma_px, order.
@@ -283,8 +288,10 @@ def match_frames_on_grid(pairs, grid_u, grid_v, prior: DisparityPrior, window: i
     StillMatches
     """
     d, s, a, reasons = [], [], [], {}
-    for i, (left, right) in enumerate(pairs):
-        m = match_frame_on_grid(left, right, grid_u, grid_v, prior, window, **options)
+    for i, pair in enumerate(pairs):
+        left, right = pair[0], pair[1]
+        bad = {"bad_left": pair[2], "bad_right": pair[3]} if len(pair) > 2 else {}
+        m = match_frame_on_grid(left, right, grid_u, grid_v, prior, window, **options, **bad)
         d.append(m.disparity)
         s.append(m.sigma)
         a.append(m.attempted)

@@ -58,6 +58,7 @@ class MatchSetup:
     dt_frame: float
     segment: np.ndarray | None = None
     speckle_px: float = float("nan")
+    defects: object = None
     extra: dict = field(default_factory=dict)
 
     @property
@@ -80,7 +81,8 @@ class FrameResult:
 
 def prepare_matching(rig, datum, first_left_frame, times, *, window=None, spacing=None, time_window: int = 1,
                      max_excursion_mm: float = 5.0, rectify_method: str = "bspline3", mask_image=None,
-                     segment=None, shape_order: int = 1) -> MatchSetup:
+                     segment=None, shape_order: int = 1, saturation: float | None = None,
+                     halo_px: int | None = None) -> MatchSetup:
     """Set up the matching of one run.
 
     Parameters
@@ -98,6 +100,12 @@ def prepare_matching(rig, datum, first_left_frame, times, *, window=None, spacin
     mask_image : (H, W) array or None, left-camera (unrectified) mask, non-zero = measure.
     segment : (N,) int or None, contiguous-segment labels (see :class:`MatchSetup`).
     shape_order : 1 or 2, the IC-GN shape function (see MatchParams).
+    saturation : fraction of full scale at and above which a pixel is
+        saturated and left out of the correlation windows (None: the default,
+        surfrec.match.defects.SATURATION; a value >= 1.5 turns the test off).
+    halo_px : growth of saturated and defective areas, px (None: the default).
+    The datum's fixed defect maps (hot and dead pixels), when it holds them,
+    are left out of every window too.
 
     Returns
     -------
@@ -106,8 +114,10 @@ def prepare_matching(rig, datum, first_left_frame, times, *, window=None, spacin
     Raises
     ------
     ValueError
-        The datum holds no valid reference disparity on the grid.
+        The datum holds no valid reference disparity on the grid, or defect
+        maps of another image size.
     """
+    from surfrec.match.defects import HALO_PX, SATURATION, DefectSettings
     from surfrec.match.rectification import FrameRectifier
     from surfrec.match.speckle import default_window, speckle_size_px
     from surfrec.match.validity import window_fully_inside
@@ -133,9 +143,19 @@ def prepare_matching(rig, datum, first_left_frame, times, *, window=None, spacin
         vv, uu = np.meshgrid(gv, gu, indexing="ij")
         measure = window_fully_inside(rect, uu, vv, window)
     dt_frame = float(np.median(np.diff(times))) if times.size > 1 else 1.0
+    fixed = {}
+    for side in ("left", "right"):
+        m = getattr(datum, f"defects_{side}", None)
+        if m is not None and tuple(m.shape[::-1]) != tuple(rig.image_size):
+            raise ValueError(f"holds a {side} defect map of {m.shape[1]}x{m.shape[0]} px, but the rig's images are "
+                             f"{rig.image_size[0]}x{rig.image_size[1]} px")
+        fixed[side] = m
+    defects = DefectSettings(SATURATION if saturation is None else saturation,
+                             HALO_PX if halo_px is None else halo_px, fixed["left"], fixed["right"])
     return MatchSetup(params=params, rectifier=rectifier, grid_u=gu, grid_v=gv, centre=centre, band=band,
                       measure=measure, times=times, dt_frame=dt_frame,
-                      segment=None if segment is None else np.asarray(segment), speckle_px=float(speckle))
+                      segment=None if segment is None else np.asarray(segment), speckle_px=float(speckle),
+                      defects=defects)
 
 
 def window_of(setup: MatchSetup, i: int) -> list[int]:
@@ -171,7 +191,8 @@ def match_frames(setup: MatchSetup, left_frames, right_frames, frames, *, unusab
     frames = list(frames)
     if cache is None:
         step = int(np.median(np.diff(frames))) if len(frames) > 1 else 1
-        cache = RectifiedCache(setup.rectifier, left_frames, right_frames, keep=p.time_window + max(1, step))
+        cache = RectifiedCache(setup.rectifier, left_frames, right_frames, keep=p.time_window + max(1, step),
+                               defects=setup.defects)
     unusable = set() if unusable is None else set(unusable)
     unreadable = set()
     shape = setup.shape
@@ -206,12 +227,28 @@ def match_frames(setup: MatchSetup, left_frames, right_frames, frames, *, unusab
         rights = _stack([pairs[j][1] for j in idx])
         taus = (setup.times[idx] - setup.times[i]) / setup.dt_frame
         coef = _stack([cache.right_coefficients(j, p.spline_order) for j in idx])
+        bad_left, bad_right = _bad_stacks([cache.bad(j) for j in idx], lefts.shape)
         res = match_frame(lefts, rights, taus, setup.grid_u, setup.grid_v, setup.centre, setup.band, p,
-                          measure=setup.measure, right_coef=coef)
+                          measure=setup.measure, right_coef=coef, bad_left=bad_left, bad_right=bad_right)
         flags = 0
         if np.isfinite(res["disparity"]).mean() < FEW_VALID_FRACTION:
             flags |= FLAG_FEW_VALID
         yield FrameResult(i, res["disparity"], res["disparity_sigma"], res["score"], flags, res["reasons"])
+
+
+def _bad_stacks(masks, shape):
+    # (T, H, W) masks of the window's frames, or None for a side where no frame has a bad pixel.
+    out = []
+    for k in range(2):
+        if all(m[k] is None for m in masks):
+            out.append(None)
+            continue
+        stack = np.zeros(shape, np.uint8)
+        for t, m in enumerate(masks):
+            if m[k] is not None:
+                stack[t] = m[k]
+        out.append(stack)
+    return out[0], out[1]
 
 
 def _stack(arrays):
