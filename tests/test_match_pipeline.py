@@ -154,3 +154,38 @@ def test_timestamps_errors(tmp_path):
     p.write_text("frame,left_s,right_s\n0,0.000,0.000\n1,0.002,0.0031\n")
     with pytest.raises(InputError, match="not synchronised"):
         read_timestamps(p, 2)
+
+
+def test_rejected_points_tell_no_texture_from_a_mismatch():
+    # One band of the pair is flat (no speckle: only noise), another shows unrelated speckle in the
+    # right view (a mismatch). The noise floor sigma_d = sqrt(2) sigma_n / sqrt(sum gx^2) (Pan et al.,
+    # Opt. Express 16 (2008) 7037) puts the flat band's points under low_texture and not the others.
+    import cv2
+
+    from surfrec.synth.render import speckle_pattern
+
+    rng = np.random.default_rng(21)
+    w, h = 240, 120
+
+    def speckle():
+        p = speckle_pattern((w, h), 4.0, rng)
+        return cv2.GaussianBlur(p, (0, 0), 0.6).astype(np.float32)
+
+    left = 0.1 + 0.7 * speckle()
+    M = np.float32([[1, 0, -3.0], [0, 1, 0]])  # right(x) = left(x + 3): disparity 3 px
+    right = cv2.warpAffine(left, M, (w, h), flags=cv2.INTER_CUBIC, borderMode=cv2.BORDER_REFLECT)
+    left[:, 40:100] = 0.3
+    right[:, 37:97] = 0.3
+    right[:, 150:210] = (0.1 + 0.7 * speckle())[:, 150:210]
+    left += rng.normal(0, 0.003, left.shape).astype(np.float32)
+    right += rng.normal(0, 0.003, right.shape).astype(np.float32)
+    gu, gv = matching_grid((w, h), 4, 15)
+    centre = np.full((gv.size, gu.size), 3.0)
+    params = MatchParams(window=15, spacing=4, band_px=3)
+    res = match_frame(left[None], right[None], np.zeros(1), gu, gv, centre, 3, params)
+    r = res["reasons"]
+    flat_cols = np.sum((gu - 7 >= 40) & (gu + 7 < 97)) * gv.size
+    assert r["low_texture"] >= 0.9 * flat_cols
+    mismatch = np.isnan(res["disparity"][:, (gu - 7 > 150) & (gu + 7 < 207)])
+    assert mismatch.mean() > 0.9
+    assert r["low_texture"] <= flat_cols + 2 * gv.size  # the mismatches are not called textureless

@@ -214,9 +214,59 @@ def match_frame(lefts, rights, taus, grid_u, grid_v, centre, band, params: Match
     outl = normalised_median_test(out_d, threshold=params.median_threshold, eps=params.median_eps)
     out_d[outl] = np.nan
     reasons["median_test"] = int(outl.sum())
+    # Of the points rejected for their score, sigma or convergence, those whose window has too little texture
+    # to reach max_sigma_px even when matched right are told apart from mismatches.
+    rejected = np.zeros(shape, bool)
+    rejected[ok] = np.isfinite(d_int) & (iters == -1)  # not converged
+    rejected |= low | big
+    reasons["low_texture"] = int(np.sum(rejected & low_texture(lefts, uu, vv, out_s, ok & ~rejected & np.isfinite(out_d),
+                                                                rejected, params)))
     out_s[~np.isfinite(out_d)] = np.nan
     return {"disparity": out_d.astype(np.float32), "disparity_sigma": out_s.astype(np.float32),
             "score": out_c.astype(np.float32), "reasons": reasons}
+
+
+def low_texture(lefts, uu, vv, sigma, good, candidates, params: MatchParams) -> np.ndarray:
+    """Points whose window has too little texture to be measured, matched right or not.
+
+    The displacement noise floor of correlation matching is
+    sigma_d = sqrt(2) sigma_n / sqrt(sum of squared row gradients over the window)
+    (Pan et al., Opt. Express 16 (2008) 7037). The frame's noise sigma_n is
+    read off its good points (their estimated sigma times their gradient
+    energy, median), so no sensor model is needed; a candidate point whose
+    predicted floor exceeds ``max_sigma_px`` lacks texture (a dark, flat or
+    defocused patch); the others that failed were mismatches.
+
+    Parameters
+    ----------
+    lefts : (T, H, W) rectified left frames.  uu, vv : (Nv, Nu) int grid px.
+    sigma : (Nv, Nu) estimated 1-sigma, px.  good : (Nv, Nu) bool, accepted points.
+    candidates : (Nv, Nu) bool, the points to classify.
+
+    Returns
+    -------
+    (Nv, Nu) bool, True at candidates that lack texture.
+    """
+    out = np.zeros(uu.shape, bool)
+    if not candidates.any() or good.sum() < 10:
+        return out
+    import cv2
+
+    energy = np.zeros(uu.shape)
+    for frame in lefts:
+        g = np.zeros(frame.shape, np.float32)
+        g[:, 1:-1] = 0.5 * (frame[:, 2:] - frame[:, :-2])
+        # Box sum over the window (not normalised): sum of g^2 at every window centre.
+        e = cv2.boxFilter(g * g, -1, (params.window, params.window), normalize=False,
+                          borderType=cv2.BORDER_CONSTANT)
+        energy += e[vv, uu]
+    sigma_n = np.median(sigma[good] * np.sqrt(energy[good] / 2.0))
+    # The measured gradient energy holds the noise's own: a central difference of white noise has
+    # variance sigma_n^2 / 2 per pixel. What is left is the texture's.
+    texture = energy - lefts.shape[0] * params.window ** 2 * sigma_n ** 2 / 2.0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        predicted = np.where(texture > 0, np.sqrt(2.0) * sigma_n / np.sqrt(np.maximum(texture, 1e-300)), np.inf)
+    return candidates & ~(predicted <= params.max_sigma_px)
 
 
 def is_blank(image, min_std: float = 0.005) -> bool:
