@@ -280,3 +280,33 @@ def test_true_geometry_sees_through_a_datum_offset(truth):
     err, _ = height_errors(X, Y, h[0], time_s=times[0], surface=surface, world_to_left_camera=m,
                            camera_rotation=left.rotation, camera_translation=left.translation)
     np.testing.assert_allclose(err, -0.5, atol=1e-9)
+
+
+def test_uncertainty_check_is_one_for_honest_gaussian_sigmas():
+    # Errors drawn from N(systematic_node, sigma^2) with a per-node sigma: the pooled random part over
+    # sigma is 1 (chi-square: E[sum of squared deviations] = (n - 1) sigma^2), and the median |e|/sigma
+    # over 0.6745 (the median of |z| for a standard normal, 0.674490 from scipy.stats.norm.ppf(0.75)) is
+    # 1 without a systematic part, above 1 with one.
+    from scipy.stats import norm
+
+    from surfrec.analysis.assess import UncertaintyCheck
+
+    rng = np.random.default_rng(4)
+    shape = (60, 80)
+    sigma = 0.01 + 0.03 * rng.random(shape)
+    honest, biased = UncertaintyCheck(shape), UncertaintyCheck(shape)
+    offset = 0.02 * rng.standard_normal(shape)
+    for _ in range(6):
+        e = sigma * rng.standard_normal(shape)
+        honest.add(e, sigma)
+        biased.add(e + offset, sigma)
+    h, b = honest.result(), biased.result()
+    assert norm.ppf(0.75) == pytest.approx(0.6745, abs=1e-4)
+    assert h["random_to_sigma"] == pytest.approx(1.0, abs=0.02)
+    assert h["error_to_sigma_median"] == pytest.approx(1.0, abs=0.03)
+    assert b["random_to_sigma"] == pytest.approx(1.0, abs=0.02)  # the systematic part leaves it alone
+    assert b["error_to_sigma_median"] > 1.1
+    half = UncertaintyCheck(shape)
+    for _ in range(6):
+        half.add(sigma * rng.standard_normal(shape), 2 * sigma)
+    assert half.result()["random_to_sigma"] == pytest.approx(0.5, abs=0.01)

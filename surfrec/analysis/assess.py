@@ -348,6 +348,63 @@ class ErrorAccumulator:
         return out
 
 
+class UncertaintyCheck:
+    """How honest a file's 1-sigma is: observed errors against the predicted ones, streamed.
+
+    Two figures, both 1 for an honest Gaussian 1-sigma:
+
+    - ``random_to_sigma``: the random part of the error (each node's spread
+      over frames, pooled as a variance over nodes with two or more frames)
+      over the RMS predicted sigma of the same node-frames;
+    - ``error_to_sigma_median``: median over node-frames of |error| / sigma,
+      divided by 0.6745 (the median of |z| for a standard normal z), which
+      includes the systematic part of the error that a per-frame sigma does
+      not claim to cover.
+
+    Parameters
+    ----------
+    shape : (Ny, Nx) of the grid.
+    """
+
+    def __init__(self, shape):
+        self.shape = tuple(shape)
+        self.node_n = np.zeros(self.shape, np.int64)
+        self.node_sum = np.zeros(self.shape)
+        self.node_sq = np.zeros(self.shape)
+        self.node_s2 = np.zeros(self.shape)
+        self.hist = np.zeros(_HIST_BINS, np.int64)
+
+    def add(self, errors, sigma):
+        """One frame's errors and predicted 1-sigma, (Ny, Nx) mm (NaN ignored)."""
+        e = np.asarray(errors, np.float64)
+        sg = np.asarray(sigma, np.float64)
+        ok = np.isfinite(e) & np.isfinite(sg) & (sg > 0)
+        if not ok.any():
+            return
+        self.node_n += ok
+        z = np.where(ok, e, 0.0)
+        self.node_sum += z
+        self.node_sq += z * z
+        self.node_s2 += np.where(ok, sg * sg, 0.0)
+        self.hist += _log_hist(np.abs(e[ok]) / sg[ok])
+
+    def result(self) -> dict:
+        out = {"random_to_sigma": None, "error_to_sigma_median": None, "sigma_rms_mm": None}
+        if self.hist.sum() == 0:
+            return out
+        out["error_to_sigma_median"] = _hist_percentile(self.hist, 50.0) * _MAD_TO_SIGMA
+        many = self.node_n >= 2
+        if many.any():
+            n = self.node_n[many]
+            m = self.node_sum[many] / n
+            ss = np.maximum(self.node_sq[many] - n * m * m, 0.0)  # sum of squared deviations from the node mean
+            s2 = self.node_s2[many] / n
+            # Pooled: sum (n-1) var over sum (n-1) sigma^2, so few frames per node bias nothing.
+            out["random_to_sigma"] = float(np.sqrt(ss.sum() / np.sum((n - 1) * s2)))
+            out["sigma_rms_mm"] = float(np.sqrt(np.sum(n * s2) / n.sum()))
+        return out
+
+
 def _log_hist(a):
     """Counts of magnitudes ``a`` (>= 0) in the logarithmic bins; bin 0 holds everything below 1e-9."""
     with np.errstate(divide="ignore"):
@@ -483,11 +540,12 @@ class TruthComparison:
         if self.step_time_s is None and self.wave is not None and self.wave.step_time_s is not None:
             self.step_time_s = self.wave.step_time_s
         self.frames: list[_Frame] = []
+        self.uncertainty = UncertaintyCheck(shape)
         self.n_seen = 0
         self.n_valid_seen = 0
         self.n_valid_unseen = 0
 
-    def add(self, height, time_s: float, index: int | None = None):
+    def add(self, height, time_s: float, index: int | None = None, sigma=None):
         """Compare one frame.
 
         Parameters
@@ -495,6 +553,8 @@ class TruthComparison:
         height : (Ny, Nx) datum-frame mm, NaN where invalid.
         time_s : the frame's time on the truth's clock, s.
         index : the frame's index in the file (for the report; default: running count).
+        sigma : (Ny, Nx) mm or None, the file's height_uncertainty (checked
+            against the errors in the true datum frame, :class:`UncertaintyCheck`).
         """
         h = np.asarray(height, np.float64)
         fr = _Frame(len(self.frames) if index is None else int(index), float(time_s))
@@ -516,6 +576,8 @@ class TruthComparison:
                 self.n_valid_seen += fr.stats["valid_seen"]
                 self.n_valid_unseen += fr.stats["valid_outside_seen"]
             self.acc[g].add(err)
+            if g == "true_datum_frame" and sigma is not None:
+                self.uncertainty.add(err, sigma)
             st = error_statistics(err)
             fr.stats[g] = {k: st[k] for k in ("n", "rms_mm", "bias_mm", "p95_abs_mm")}
             if g == "true_geometry" and self.wave is not None:
@@ -556,6 +618,7 @@ class TruthComparison:
         "plane_wave" (amplitudes, the step ratio) when the truth has one.
         """
         out = {g: self.acc[g].result() for g in self.GEOMETRIES}
+        out["uncertainty"] = self.uncertainty.result()
         out["coverage"] = self.n_valid_seen / self.n_seen if self.n_seen else None
         out["seen_nodes"] = int(self.n_seen)
         out["valid_outside_seen"] = int(self.n_valid_unseen)

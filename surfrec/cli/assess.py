@@ -204,7 +204,7 @@ def _run(heights, head, comparison, truth_info, lag):
                 if ok.any():
                     predicted.append(float(np.median(s[k][ok])))
                 if comparison is not None:
-                    comparison.add(h[k], float(truth_info["times"][i + k]), i + k)
+                    comparison.add(h[k], float(truth_info["times"][i + k]), i + k, sigma=s[k])
                 if progress is not None:
                     progress(i + k + 1)
     finally:
@@ -273,6 +273,11 @@ def _text(r) -> str:
                      "pose (the rig's 3-D error); true datum frame: the values at face value in the datum frame of "
                      "the true camera and still water (what a user of the file gets). systematic: RMS of each "
                      "node's mean error; random: RMS of each node's spread over frames.")
+        un = r.get("uncertainty") or {}
+        if un.get("random_to_sigma") is not None:
+            lines.append(f"1-sigma check (true datum frame): random error / predicted 1-sigma = "
+                         f"{un['random_to_sigma']:.2f} (pooled over nodes); median |error| / 1-sigma / 0.6745 = "
+                         f"{un['error_to_sigma_median']:.2f} (with the systematic part); 1 is honest")
         cov = r.get("coverage")
         lines.append(f"coverage: {_f(cov and 100 * cov, '{:.2f}')}% of the nodes both true cameras see are valid"
                      f" ({r['seen_nodes']} node-frames seen); {r['valid_outside_seen']} valid node-frames outside "
