@@ -207,7 +207,8 @@ def _state(spec: JobSpec, *, limit: bool = True) -> dict:
     setup = prepare_matching(rig, datum, first, spec.slot_time, window=m.get("window"), spacing=m.get("spacing"),
                              time_window=m["time_window"], max_excursion_mm=m["max_excursion_mm"],
                              rectify_method=m["rectify"], mask_image=mask, segment=segment,
-                             shape_order=m.get("shape_order", 1))
+                             shape_order=m.get("shape_order", 1), saturation=m.get("saturation"),
+                             bad_pixels=m.get("bad_pixels", True))
     h = spec.heights
     hsetup = prepare_heights(setup.grid_u, setup.grid_v, rig, datum, step=h.get("grid_step_mm"),
                              extent=h.get("extent_mm"), circles=h.get("circles", ()),

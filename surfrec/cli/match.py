@@ -51,6 +51,14 @@ def _odd(ctx, param, value):
 @click.option("--rectify", "rectify_method", type=click.Choice(["bspline3", "bspline5", "cubic", "lanczos4", "linear"]),
               default="bspline3", show_default=True,
               help="Resampling used to rectify the frames (see docs/performance.md for the error each adds).")
+@click.option("--saturation", type=click.FloatRange(min=0, max=1, min_open=True), default=0.98, show_default=True,
+              metavar="FRACTION",
+              help="Fraction of full scale at and above which a pixel counts as saturated (a glint): saturated "
+                   "pixels, with a 2 px halo, and the datum's hot and dead pixels never enter a correlation "
+                   "window.")
+@click.option("--bad-pixels/--no-bad-pixels", "bad_pixels", default=True, show_default=True,
+              help="Leave saturated, hot and dead pixels out of the correlation windows (--no-bad-pixels: "
+                   "use every pixel as it is, for comparison).")
 @click.option("--shape-order", type=click.IntRange(1, 2), default=1, show_default=True, metavar="1|2",
               help="Shape function of the sub-pixel refinement: 1 (disparity and its slopes) or 2 (also its "
                    "curvature). Use 2, with a window about 1.4 times larger, when the waves are short compared "
@@ -59,7 +67,7 @@ def _odd(ctx, param, value):
 @force_option
 @verbosity
 def command(rig_path, datum_path, left, right, output, fps, timestamps, window, spacing, time_window,
-            max_excursion, mask_path, start, stop, step, rectify_method, shape_order, force):
+            max_excursion, mask_path, start, stop, step, rectify_method, saturation, bad_pixels, shape_order, force):
     """Match the speckle between the two views of every frame pair.
 
     Rectifies each frame with maps computed once, searches each grid point in
@@ -103,7 +111,8 @@ def command(rig_path, datum_path, left, right, output, fps, timestamps, window, 
     try:
         setup = prepare_matching(rig, datum, lf[frames[0]], times, window=window, spacing=spacing,
                                  time_window=time_window, max_excursion_mm=max_excursion,
-                                 rectify_method=rectify_method, mask_image=mask_image, shape_order=shape_order)
+                                 rectify_method=rectify_method, mask_image=mask_image, shape_order=shape_order,
+                                 saturation=saturation if bad_pixels else None, bad_pixels=bad_pixels)
     except ValueError as exc:
         raise InputError(f"{datum_path} {exc}") from None
     params, gu, gv = setup.params, setup.grid_u, setup.grid_v
@@ -112,6 +121,8 @@ def command(rig_path, datum_path, left, right, output, fps, timestamps, window, 
              setup.band, time_window)
 
     attrs = {f"param_{k}": v for k, v in params.to_dict().items() if v is not None}
+    attrs.update({f"bad_pixels_{k}": v for k, v in
+                  (setup.defects.to_dict() if setup.defects is not None else {"off": 1}).items()})
     attrs.update({"rig_sha256": rig_hash, "datum_sha256": file_sha256(datum_path),
                   "history": " ".join(shlex.quote(a) for a in ["surfrec", *sys.argv[1:]]),
                   "frames": f"{start}:{stop}:{step}", "speckle_px": float(setup.speckle_px),

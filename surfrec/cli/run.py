@@ -124,6 +124,7 @@ def _run(run_file, workers, scheduler, security_path, strict_rig, force):
     match_opts = {"window": v.get("match.window"), "spacing": v.get("match.spacing"),
                   "time_window": v["match.time_window"], "max_excursion_mm": v["match.max_excursion_mm"],
                   "rectify": v["match.rectify"], "shape_order": v["match.shape_order"],
+                  "saturation": v["match.saturation"], "bad_pixels": v["match.bad_pixels"],
                   "mask": str(v["match.mask"]) if v.get("match.mask") else None}
     heights_opts = {"grid_step_mm": v.get("heights.grid_step_mm"), "extent_mm": v.get("heights.extent_mm"),
                     "circles": [list(c) for c in v["heights.exclude_circles_mm"]],

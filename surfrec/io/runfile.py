@@ -58,6 +58,8 @@ time_window = 1                       # odd number of frames correlated together
 max_excursion_mm = 5.0                # largest excursion from the still water; sets the search band
 rectify = "bspline3"                  # bspline3 | bspline5 | cubic | lanczos4 | linear
 shape_order = 1                       # 1 | 2: 2 follows the surface's curvature (short waves; use a larger window)
+saturation = 0.98                     # fraction of full scale from which a pixel is saturated (a glint)
+bad_pixels = true                     # leave saturated, hot and dead pixels out of the correlation windows
 # mask = "mask.png"                   # left camera, non-zero = measure
 
 [heights]
@@ -96,6 +98,7 @@ _SCHEMA = {
         "time_window": ("odd", False, (1, 51)), "max_excursion_mm": ("float", False, (0.0, 1000.0, True)),
         "rectify": ("choice", False, RECTIFY_METHODS), "mask": ("file", False, None),
         "shape_order": ("int", False, (1, 2)),
+        "saturation": ("float", False, (0.0, 1.0, True)), "bad_pixels": ("bool", False, None),
     },
     "heights": {
         "grid_step_mm": ("float", False, (0.0, 1e4, True)), "extent_mm": ("extent", False, None),
@@ -113,6 +116,7 @@ _SCHEMA = {
 
 _DEFAULTS = {
     "match.time_window": 1, "match.max_excursion_mm": 5.0, "match.rectify": "bspline3", "match.shape_order": 1,
+    "match.saturation": 0.98, "match.bad_pixels": True,
     "heights.still_correction": True, "heights.exclude_circles_mm": [], "heights.exclude_polygons": [],
     "batch.on_bad_frame": "abort", "batch.strict_rig": False,
     "batch.check_rig_frames": 3, "batch.check_rig_every": 5000, "batch.rig_tolerance_px": 0.3,

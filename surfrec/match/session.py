@@ -82,7 +82,7 @@ class FrameResult:
 def prepare_matching(rig, datum, first_left_frame, times, *, window=None, spacing=None, time_window: int = 1,
                      max_excursion_mm: float = 5.0, rectify_method: str = "bspline3", mask_image=None,
                      segment=None, shape_order: int = 1, saturation: float | None = None,
-                     halo_px: int | None = None) -> MatchSetup:
+                     halo_px: int | None = None, bad_pixels: bool = True) -> MatchSetup:
     """Set up the matching of one run.
 
     Parameters
@@ -104,6 +104,7 @@ def prepare_matching(rig, datum, first_left_frame, times, *, window=None, spacin
         saturated and left out of the correlation windows (None: the default,
         surfrec.match.defects.SATURATION; a value >= 1.5 turns the test off).
     halo_px : growth of saturated and defective areas, px (None: the default).
+    bad_pixels : False uses every pixel as it is (no saturation test, no defect maps).
     The datum's fixed defect maps (hot and dead pixels), when it holds them,
     are left out of every window too.
 
@@ -151,7 +152,7 @@ def prepare_matching(rig, datum, first_left_frame, times, *, window=None, spacin
                              f"{rig.image_size[0]}x{rig.image_size[1]} px")
         fixed[side] = m
     defects = DefectSettings(SATURATION if saturation is None else saturation,
-                             HALO_PX if halo_px is None else halo_px, fixed["left"], fixed["right"])
+                             HALO_PX if halo_px is None else halo_px, fixed["left"], fixed["right"]) if bad_pixels else None
     return MatchSetup(params=params, rectifier=rectifier, grid_u=gu, grid_v=gv, centre=centre, band=band,
                       measure=measure, times=times, dt_frame=dt_frame,
                       segment=None if segment is None else np.asarray(segment), speckle_px=float(speckle),
