@@ -20,16 +20,30 @@ SCENARIO_HELP = {
 }
 
 
+def _parse_effects(ctx, param, value):
+    from surfrec.synth.effects import parse_effects
+
+    try:
+        return parse_effects(value)
+    except ValueError as exc:
+        raise click.BadParameter(str(exc), ctx=ctx, param=param) from None
+
+
 @click.command("synth")
 @click.argument("outdir", type=click.Path(file_okay=False))
 @click.option("--scenario", type=click.Choice(list(SCENARIO_HELP)), default="waves", show_default=True,
               help="Which invented session to render: " + "; ".join(f"{k}: {v}" for k, v in SCENARIO_HELP.items()))
 @click.option("--quick", is_flag=True, help="A small session (512x384 px, a few frames) that renders in seconds.")
+@click.option("--camera-effects", "camera_effects", default="none", show_default=True, metavar="LIST",
+              callback=_parse_effects,
+              help="Camera effects to render: 'all', 'none' or a comma list of vignetting, illumination, "
+                   "defocus, dust, defects, glints, noise, bitdepth, motion (docs/synthetic-sessions.md). "
+                   "The truth surface is the same either way.")
 @seed_option
 @workers_option
 @force_option
 @verbosity
-def command(outdir, scenario, quick, seed, workers, force):
+def command(outdir, scenario, quick, camera_effects, seed, workers, force):
     """Render a synthetic stereo session into OUTDIR.
 
     OUTDIR receives target/, still/ and waves/ folders of left/right PNG
@@ -48,10 +62,11 @@ def command(outdir, scenario, quick, seed, workers, force):
     from surfrec.io.sessionfolder import write_session
 
     t0 = time.monotonic()
-    sc = build_scenario(scenario, quick=quick, seed=seed)
+    sc = build_scenario(scenario, quick=quick, seed=seed, effects=camera_effects)
     total = frame_count(sc)
-    log.info("rendering scenario %r%s: %d frame pairs of %dx%d px", scenario, " (quick)" if quick else "",
-             total, *sc.rigs["rig"].left.image_size)
+    log.info("rendering scenario %r%s: %d frame pairs of %dx%d px%s", scenario, " (quick)" if quick else "",
+             total, *sc.rigs["rig"].left.image_size,
+             f", camera effects: {', '.join(sc.effects.to_dict()['enabled'])}" if sc.effects else "")
     with Progress(total, "rendering") as progress:
         summary = write_session(sc, out, force=force, progress=progress,
                                 workers=workers or available_cores())

@@ -48,7 +48,7 @@ def write_session(scenario, outdir, *, force: bool = False, progress=None, worke
                 _write_timestamps(tmp / g.name / "timestamps.csv", g.times)
         write_truth(tmp / "truth.h5", scenario=_scenario_record(scenario),
                     rigs={k: r.to_dict() for k, r in scenario.rigs.items()},
-                    groups=_group_records(scenario, records, surfaces))
+                    groups=_group_records(scenario, records, surfaces), effects=records.get("_effects"))
         (tmp / "SCENARIO.md").write_text(scenario_markdown(scenario), encoding="utf-8")
     return {"render_seconds": render_seconds, "path": str(outdir)}
 
@@ -68,7 +68,8 @@ def _scenario_record(sc) -> dict:
             "water": sc.water, "post": sc.post.to_dict() if sc.post else None,
             "notes": {**sc.notes, "speckle_grain_camera_px": sc.speckle_grain_px,
                       "speckle_grain_projector_px": sc.projector_grain_px,
-                      "board_supersample": 4, "speckle_seed_rule": "numpy default_rng([seed, group_id, frame, 0])"}}
+                      "board_supersample": 4, "speckle_seed_rule": "numpy default_rng([seed, group_id, frame, 0])",
+                      "camera_effects": sc.effects.to_dict()["enabled"] if sc.effects is not None else []}}
 
 
 def _group_records(sc, records, surfaces) -> dict:
@@ -124,6 +125,8 @@ def scenario_markdown(sc) -> str:
         "surfrec heights disparity.h5 --rig rig.json --datum datum.h5 -o heights.h5",
         "surfrec assess heights.h5 --truth truth.h5",
     ]
+    if sc.effects is not None and sc.effects.any:
+        lines[lines.index("## Processing it"):lines.index("## Processing it")] = _effects_markdown(sc) + [""]
     if "periods" in sc.notes:
         # Whole wave periods: the run serves the wave analysis too.
         depth = sc.water["depth_mm"]
@@ -137,3 +140,32 @@ def scenario_markdown(sc) -> str:
         "",
     ]
     return "\n".join(lines)
+
+
+def _effects_markdown(sc) -> list:
+    """The camera-effects paragraph of SCENARIO.md."""
+    fx = sc.effects
+    p = fx.to_dict()
+    said = {
+        "vignetting": "lens vignetting V = 1 - a rho^2 - b rho^4 on top of the natural cos^4 "
+                      f"(left a, b = {p['vignetting']['left'][0]:g}, {p['vignetting']['left'][1]:g}; right "
+                      f"{p['vignetting']['right'][0]:g}, {p['vignetting']['right'][1]:g})",
+        "illumination": f"the projector's hotspot (Gaussian beam, sigma {p['illumination']['hotspot_sigma_deg']:g} "
+                        "degrees) and a room lamp at "
+                        f"({', '.join(f'{v:g}' for v in p['room_lamp_mm'])}) mm lighting the board and the ambient",
+        "defocus": f"thin-lens defocus (f/{p['defocus']['f_number']['left']:g}, focus "
+                   f"{p['defocus']['focus_mm']['left']:g} / {p['defocus']['focus_mm']['right']:g} mm, "
+                   f"{1000 * p['defocus']['pixel_pitch_mm']:g} um pixels at full size)",
+        "dust": f"{p['dust']['count']} dust shadows per camera",
+        "defects": f"hot ({p['defects']['hot_fraction']:g}) and dead ({p['defects']['dead_fraction']:g}) pixels",
+        "glints": "saturating glints of the projector and the lamp on the water (Beckmann lobes, m = "
+                  f"{p['glints']['projector_roughness']:g} and {p['glints']['lamp_roughness']:g})",
+        "noise": f"{p['noise']['read_noise_e']:g} e- read noise, {p['noise']['full_well_e']:g} e- full well, "
+                 f"black level {p['noise']['black_level_dn12']:g} DN of 12 bits",
+        "bitdepth": f"{p['bitdepth']['bits']}-bit data in {p['bitdepth']['container_bits']}-bit files",
+        "motion": f"motion blur over a {1000 * p['motion']['exposure_s']:g} ms exposure",
+    }
+    return ["**Camera effects.** " + "; ".join(said[n] for n in p["enabled"]) + ". Every parameter, the "
+            "per-camera vignetting and dust maps, the hot and dead pixels and, per frame, the pixels the "
+            "glints saturate are in `truth.h5` (group `effects`); the truth surface is the same as "
+            "without effects."]

@@ -15,6 +15,15 @@ root attributes
     surface/height (T, Ny, Nx) mm, surface/seen (Ny, Nx) bool — the exact
     surface sampled on a regular world grid over the area both cameras see.
 
+/effects (only for a session rendered with camera effects)
+    attribute params (JSON): every effect parameter and the enabled list;
+    /effects/cameras/left and /right: vignetting (H, W) lens fall-off, dust
+    (H, W) transmission, dust_spots (N, 4) column px, row px, radius px,
+    centre transmission, hot_pixels (N, 2) and dead_pixels (M, 2) row, column
+    px, hot_stuck (N) bool, hot_level (N) fraction of full scale,
+    defocus_sigma_still_px (H, W) px; /effects/glints/GROUP/left and /right
+    (T, H, W) bool: the pixels that glints saturate, per frame.
+
 The analytic surface can be rebuilt exactly from the group's ``surface``
 attribute with :func:`surfrec.synth.surfaces.surface_from_dict`.
 """
@@ -38,7 +47,7 @@ WORLD_FRAME = ("tank frame: x along the tank, y across it, z up, mm; still water
                "cameras map world points by X_cam = R X_world + t")
 
 
-def write_truth(path, *, scenario: dict, rigs: dict, groups: dict):
+def write_truth(path, *, scenario: dict, rigs: dict, groups: dict, effects: dict | None = None):
     """Write truth.h5.
 
     Parameters
@@ -48,6 +57,8 @@ def write_truth(path, *, scenario: dict, rigs: dict, groups: dict):
         description, sensor, lighting, board, water, post, notes).
     rigs : {name: rig dict (cameras and projector)}.
     groups : {name: {"attrs": {...}, "data": {name: array}, "surface": {...} or None}}.
+    effects : {"params": dict, "cameras": {side: {name: array}}, "glints": {group: {side: array}}}
+        or None (a clean render: no /effects group).
     """
     with h5py.File(path, "w") as f:
         f.attrs["format"] = FORMAT
@@ -84,6 +95,17 @@ def write_truth(path, *, scenario: dict, rigs: dict, groups: dict):
                 s["height"].attrs["units"] = "mm"
                 s["x"].attrs["units"] = "mm"
                 s["y"].attrs["units"] = "mm"
+        if effects is not None:
+            e = f.create_group("effects")
+            e.attrs["params"] = json.dumps(effects["params"])
+            for side, maps in effects.get("cameras", {}).items():
+                c = e.create_group(f"cameras/{side}")
+                for k, v in maps.items():
+                    c.create_dataset(k, data=np.asarray(v), compression="gzip", shuffle=True)
+            for name, sides in effects.get("glints", {}).items():
+                for side, masks in sides.items():
+                    e.create_dataset(f"glints/{name}/{side}", data=np.asarray(masks, bool), compression="gzip",
+                                     chunks=(1,) + np.shape(masks)[1:])
 
 
 def read_truth(path) -> dict:
@@ -118,7 +140,28 @@ def read_truth(path) -> dict:
                                      "shape": s["height"].shape}
             groups[name] = g
         out["groups"] = groups
+        out["effects"] = json.loads(f["effects"].attrs["params"]) if "effects" in f else None
     return out
+
+
+def read_truth_effects(path) -> dict | None:
+    """The camera effects of a synthetic session: parameters, fixed maps and glint masks.
+
+    Returns
+    -------
+    None for a clean render, else {"params": dict, "cameras": {side: {name: array}},
+    "glints": {group: {side: (T, H, W) bool}}} (layout in the module docstring).
+    """
+    with open_checked(Path(path), FORMAT, VERSION, "truth") as f:
+        if "effects" not in f:
+            return None
+        e = f["effects"]
+        out = {"params": json.loads(e.attrs["params"]), "cameras": {}, "glints": {}}
+        for side, c in e.get("cameras", {}).items():
+            out["cameras"][side] = {k: ds[()] for k, ds in c.items()}
+        for name, g in e.get("glints", {}).items():
+            out["glints"][name] = {side: ds[()] for side, ds in g.items()}
+        return out
 
 
 def read_truth_surface(path, group: str = "waves", frames=slice(None)) -> tuple:

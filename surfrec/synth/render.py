@@ -298,8 +298,18 @@ def _sample_pattern(coeffs, up, vp):
 
 
 def render_radiance_speckle(bundle: RayBundle, surface, t: float, projector: Projector, pattern,
-                            lighting: Lighting, post: Post | None = None, tile_rows: int = 192):
+                            lighting: Lighting, post: Post | None = None, tile_rows: int = 192, *,
+                            light=None, glint_out=None):
     """Supersampled radiance image of the speckle-lit water (fraction of full scale).
+
+    Parameters
+    ----------
+    t : frame time, s (the middle of the exposure).
+    light : surfrec.synth.effects.SpeckleLight or None
+        Camera effects on the speckle light (projector hotspot, room lamp,
+        glints, sub-times of the exposure); None renders the clean image.
+    glint_out : (height*S, width*S) float32 array or None
+        Receives the glint part of the radiance (fraction of full scale).
 
     Returns
     -------
@@ -316,31 +326,61 @@ def render_radiance_speckle(bundle: RayBundle, surface, t: float, projector: Pro
         table = bundle.tables.get(key)
         if table is None:
             table = bundle.tables[key] = _HarmonicAlongRays(bundle, surface)
-    for r0 in range(0, bundle.shape[0], tile_rows):
-        rows = slice(r0, min(r0 + tile_rows, bundle.shape[0]))
-        if table is not None:
-            x, y, z, hx, hy = table.intersect(bundle, t, rows, exempt=None if post is None else post.contains)
-        else:
-            x, y, z = intersect_surface(bundle, surface, t, rows, exempt=None if post is None else post.contains)
-            hx, hy = surface.gradient(x, y, t)
-        lx, ly, lz = pc[0] - x, pc[1] - y, pc[2] - z
-        r = np.sqrt(lx * lx + ly * ly + lz * lz)
-        cos_i = (-hx * lx - hy * ly + lz) / (r * np.sqrt(1.0 + hx * hx + hy * hy))
-        cos_p = -(axis_p[0] * lx + axis_p[1] * ly + axis_p[2] * lz) / r
-        up, vp = projector.project_xyz(x, y, z)
-        value = _sample_pattern(coeffs, up, vp)
-        irr = value * np.clip(cos_i, 0.0, None) * (z0 / r) ** 2 / cos_p ** 3
-        if post is not None:
-            irr = np.where(_post_shades(x, y, z, pc, post), 0.0, irr)
-        rad = lighting.exposure * irr + lighting.ambient
-        if post is not None:
-            rad = np.where(_post_hides(bundle, post, z, rows), lighting.post_radiance, rad)
-        out[rows] = rad * bundle.vignette[rows]
+    # Motion blur: each supersample row of a pixel is taken at its own instant of the exposure,
+    # so tiles must hold whole pixels (a multiple of S rows).
+    sub_times = None if light is None else light.sub_times
+    s = bundle.supersample
+    step = tile_rows if sub_times is None else max(s, tile_rows // s * s)
+    for r0 in range(0, bundle.shape[0], step):
+        r1 = min(r0 + step, bundle.shape[0])
+        for j, dt in enumerate((0.0,) if sub_times is None else sub_times):
+            rows = slice(r0, r1) if sub_times is None else slice(r0 + j, r1, s)
+            tj = t if sub_times is None else t + dt
+            if table is not None:
+                x, y, z, hx, hy = table.intersect(bundle, tj, rows, exempt=None if post is None else post.contains)
+            else:
+                x, y, z = intersect_surface(bundle, surface, tj, rows,
+                                            exempt=None if post is None else post.contains)
+                hx, hy = surface.gradient(x, y, tj)
+            if light is not None:
+                value = _sample_pattern(coeffs, *projector.project_xyz(x, y, z))
+                rad, glint = _effects_radiance(bundle, light, lighting, post, rows, x, y, z, hx, hy, value, projector)
+                out[rows] = rad * bundle.vignette[rows]
+                if glint_out is not None:
+                    glint_out[rows] = glint * bundle.vignette[rows]
+                continue
+            lx, ly, lz = pc[0] - x, pc[1] - y, pc[2] - z
+            r = np.sqrt(lx * lx + ly * ly + lz * lz)
+            cos_i = (-hx * lx - hy * ly + lz) / (r * np.sqrt(1.0 + hx * hx + hy * hy))
+            cos_p = -(axis_p[0] * lx + axis_p[1] * ly + axis_p[2] * lz) / r
+            up, vp = projector.project_xyz(x, y, z)
+            value = _sample_pattern(coeffs, up, vp)
+            irr = value * np.clip(cos_i, 0.0, None) * (z0 / r) ** 2 / cos_p ** 3
+            if post is not None:
+                irr = np.where(_post_shades(x, y, z, pc, post), 0.0, irr)
+            rad = lighting.exposure * irr + lighting.ambient
+            if post is not None:
+                rad = np.where(_post_hides(bundle, post, z, rows), lighting.post_radiance, rad)
+            out[rows] = rad * bundle.vignette[rows]
     return out
 
 
+def _effects_radiance(bundle, light, lighting, post, rows, x, y, z, hx, hy, value, projector):
+    """Speckle radiance with the camera effects on the light (see surfrec.synth.effects)."""
+    from surfrec.synth import effects as fx
+
+    shaded = lamp_shaded = hidden = None
+    if post is not None:
+        shaded = _post_shades(x, y, z, projector.centre, post)
+        if light.glints is not None:
+            lamp_shaded = _post_shades(x, y, z, light.lamp, post)
+        hidden = _post_hides(bundle, post, z, rows)
+    return fx.speckle_light_tile(light, lighting, x, y, z, hx, hy, value, projector, bundle.centre,
+                                 shaded, lamp_shaded, hidden)
+
+
 def render_radiance_board(bundle: RayBundle, board_rotation, board_origin, board, lighting: Lighting,
-                          tile_rows: int = 256):
+                          tile_rows: int = 256, *, lamp=None, lamp_ref: float = 1.0, depth_out=None):
     """Supersampled radiance of a chessboard target held over unlit water.
 
     Parameters
@@ -348,6 +388,14 @@ def render_radiance_board(bundle: RayBundle, board_rotation, board_origin, board
     board_rotation : (3, 3) board -> world rotation (board x, y in its plane).
     board_origin : (3,) world mm of the board's first inner corner.
     board : dict with cols, rows (inner corners), square_mm, margin_mm.
+    lamp : (3,) world mm of a room lamp or None
+        With a lamp the board and the water below are lit by it, relative
+        irradiance cos(incidence) / r^2 / lamp_ref (camera effect
+        "illumination"); None lights everything uniformly.
+    lamp_ref : the lamp's cos/r^2 (1/mm^2) where the relative irradiance is 1.
+    depth_out : (height, width) float array or None
+        Receives the camera-frame depth (mm) of what each pixel sees (the
+        mean over its sample rays of the board's and the water's depth).
     """
     Rb = np.asarray(board_rotation, float)
     ob = np.asarray(board_origin, float)
@@ -357,8 +405,12 @@ def render_radiance_board(bundle: RayBundle, board_rotation, board_origin, board
     margin = board["margin_mm"]
     c = bundle.centre
     out = np.empty(bundle.shape, np.float32)
+    s = bundle.supersample
+    if lamp is not None or depth_out is not None:
+        tile_rows = max(s, tile_rows // s * s)  # whole pixels per tile
     for r0 in range(0, bundle.shape[0], tile_rows):
-        rows = slice(r0, min(r0 + tile_rows, bundle.shape[0]))
+        r1 = min(r0 + tile_rows, bundle.shape[0])
+        rows = slice(r0, r1)
         dx, dy = bundle.sx[rows], bundle.sy[rows]
         # Ray points c + w * (sx, sy, 1); plane n . (p - ob) = 0.
         denom = n[0] * dx + n[1] * dy + n[2]
@@ -371,8 +423,22 @@ def render_radiance_board(bundle: RayBundle, board_rotation, board_origin, board
         on_board = (bx > -sq - margin) & (bx < cols * sq + margin) & (by > -sq - margin) & (by < rows_ * sq + margin)
         in_squares = (bx > -sq) & (bx < cols * sq) & (by > -sq) & (by < rows_ * sq)
         black = ((np.floor(bx / sq) + np.floor(by / sq)) % 2 == 0) & in_squares
-        rad = np.where(on_board & (c[2] + w > 0), np.where(black, lighting.board_black, lighting.board_white),
+        seen_board = on_board & (c[2] + w > 0)
+        rad = np.where(seen_board, np.where(black, lighting.board_black, lighting.board_white),
                        lighting.board_background)
+        if lamp is not None or depth_out is not None:
+            from surfrec.synth.effects import board_light_and_depth
+
+            # Lamp light and depth vary smoothly over each plane: evaluated at pixel centres on the
+            # board's plane and on the water, each sample ray taking the value of the plane it sees.
+            fb, fw, db, dw = board_light_and_depth(bundle, slice(r0 // s, r1 // s), n, ob, lamp, lamp_ref)
+            if lamp is not None:
+                up = np.where(seen_board, np.repeat(np.repeat(fb, s, 0), s, 1), np.repeat(np.repeat(fw, s, 0), s, 1))
+                rad = rad * up
+            if depth_out is not None:
+                h1, w1 = fb.shape
+                frac = seen_board.reshape(h1, s, w1, s).mean(axis=(1, 3))
+                depth_out[r0 // s:r1 // s] = frac * db + (1.0 - frac) * dw
         out[rows] = rad * bundle.vignette[rows]
     return out
 

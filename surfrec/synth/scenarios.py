@@ -80,6 +80,7 @@ class Scenario:
     projector_grain_px: float = 4.0
     water: dict = field(default_factory=dict)
     notes: dict = field(default_factory=dict)
+    effects: object = None  # surfrec.synth.effects.CameraEffects, or None: the clean render
 
     def group(self, name: str) -> FrameGroup:
         for g in self.groups:
@@ -240,7 +241,7 @@ def _board_views(rng, left: Camera, right: Camera, board: dict, n_central: int, 
 
 # ------------------------------------------------------------------ scenarios
 
-def build_scenario(name: str = "waves", *, quick: bool = False, seed: int = 0) -> Scenario:
+def build_scenario(name: str = "waves", *, quick: bool = False, seed: int = 0, effects=None) -> Scenario:
     """Build a named scenario (see design.md, "A synthetic session").
 
     Parameters
@@ -248,6 +249,9 @@ def build_scenario(name: str = "waves", *, quick: bool = False, seed: int = 0) -
     name : "waves" (default), "scatter", "plane", "ripples" or "moved".
     quick : shrink to 512x384 px and a few frames (for tests).
     seed : seeds the target poses, speckle patterns and sensor noise.
+    effects : None (the clean render), a comma list or set of effect names, or a
+        :class:`surfrec.synth.effects.CameraEffects`. The "noise" and "bitdepth"
+        effects replace the scenario's sensor and lighting levels.
     """
     if name not in SCENARIOS:
         raise ValueError(f"unknown scenario {name!r}; choose one of {', '.join(SCENARIOS)}")
@@ -333,12 +337,25 @@ def build_scenario(name: str = "waves", *, quick: bool = False, seed: int = 0) -
         desc = ("The waves session after someone bumped the right camera: it turned 0.2 degrees about its "
                 "optical axis. target/ holds the views from before the move, target-moved/ four new ones; "
                 "still/ and waves/ were recorded after the move.")
+    fx = _effects(effects)
+    if fx is not None:
+        sensor, lighting = fx.sensor_and_lighting(sensor, lighting)
     return Scenario(name=name, description=desc, seed=seed, quick=quick, rigs=rigs, sensor=sensor,
-                    lighting=lighting, board=board, groups=groups, post=post, speckle_grain_px=grain,
+                    lighting=lighting, board=board, groups=groups, post=post, speckle_grain_px=grain, effects=fx,
                     projector_grain_px=grain_proj,
                     water={"depth_mm": depth, "density_kg_m3": water.DENSITY,
                            "surface_tension_n_m": water.SURFACE_TENSION, "gravity_m_s2": water.STANDARD_GRAVITY,
                            "temperature_c": water.TEMPERATURE_C}, notes=notes)
+
+
+def _effects(effects):
+    """CameraEffects from names or an instance; None when no effect is on."""
+    if effects is None:
+        return None
+    from surfrec.synth.effects import CameraEffects
+
+    fx = effects if isinstance(effects, CameraEffects) else CameraEffects(enabled=effects)
+    return fx if fx.any else None
 
 
 def _footprint_extent(left: Camera, right: Camera, margin: float):

@@ -52,8 +52,14 @@ def render_side(scenario: Scenario, side: str):
 
     Yields
     ------
-    (group_name, index, image) with image uint8/uint16 (height, width).
+    (group_name, index, image, extra) with image uint8/uint16 (height, width)
+    and extra None, or with camera effects a dict {"glint": (height, width)
+    bool of the pixels glints saturate, or None}.
     """
+    fx = scenario.effects
+    if fx is not None and fx.any:
+        yield from _render_side_effects(scenario, side)
+        return
     k = SIDES.index(side)
     bundles = _Bundles(scenario, side)
     for g in scenario.groups:
@@ -64,7 +70,7 @@ def render_side(scenario: Scenario, side: str):
                 rad = rd.render_radiance_board(bundles.get(g.rig, BOARD_SUPERSAMPLE), view.rotation, view.origin,
                                                scenario.board, scenario.lighting)
                 noise = np.random.default_rng([scenario.seed, g.group_id, i, k + 1])
-                yield g.name, i, rd.expose(rad, sensor, noise)
+                yield g.name, i, rd.expose(rad, sensor, noise), None
         else:
             s = scenario.sensor.supersample
             for i, t in enumerate(g.times):
@@ -74,7 +80,64 @@ def render_side(scenario: Scenario, side: str):
                 rad = rd.render_radiance_speckle(bundles.get(g.rig, s), g.surface, float(t), rig.projector,
                                                  pattern, scenario.lighting, scenario.post)
                 noise = np.random.default_rng([scenario.seed, g.group_id, i, k + 1])
-                yield g.name, i, rd.expose(rad, scenario.sensor, noise)
+                yield g.name, i, rd.expose(rad, scenario.sensor, noise), None
+
+
+def camera_fixed_maps(scenario: Scenario) -> dict:
+    """The fixed per-camera effect maps of a scenario (see surfrec.synth.effects.camera_fixed).
+
+    Returns
+    -------
+    {"left": CameraFixed, "right": CameraFixed}; the maps belong to the physical
+    camera (its sensor and lens), so a camera that was moved keeps them.
+    """
+    from surfrec.synth import effects as efx
+
+    first = next(iter(scenario.rigs.values()))
+    return {side: efx.camera_fixed(scenario.effects, getattr(first, side), side, scenario.seed) for side in SIDES}
+
+
+def _render_side_effects(scenario: Scenario, side: str):
+    """render_side with the scenario's camera effects (surfrec.synth.effects)."""
+    from surfrec.synth import effects as efx
+
+    fx = scenario.effects
+    k = SIDES.index(side)
+    bundles = _Bundles(scenario, side)
+    fixed = camera_fixed_maps(scenario)[side]
+    lamp = np.asarray(fx.room_lamp_mm, float) if fx.on("illumination") else None
+    for g in scenario.groups:
+        rig = scenario.rigs[g.rig]
+        cam = getattr(rig, side)
+        if g.kind == "board":
+            sensor = dataclasses.replace(scenario.sensor, supersample=BOARD_SUPERSAMPLE)
+            bundle = bundles.get(g.rig, BOARD_SUPERSAMPLE)
+            depth = np.empty((bundle.shape[0] // BOARD_SUPERSAMPLE, bundle.shape[1] // BOARD_SUPERSAMPLE)) \
+                if fx.on("defocus") else None
+            for i, view in enumerate(g.views):
+                rad = rd.render_radiance_board(bundle, view.rotation, view.origin, scenario.board, scenario.lighting,
+                                               lamp=lamp, lamp_ref=efx.board_lamp_reference(lamp) if lamp is not None
+                                               else 1.0, depth_out=depth)
+                sigma = None if depth is None else efx.defocus_sigma_px(depth, cam, side, fx.defocus)
+                noise = np.random.default_rng([scenario.seed, g.group_id, i, k + 1])
+                img, _ = efx.expose_with_effects(rad, sensor, noise, fixed, defocus_px=sigma)
+                yield g.name, i, img, {"glint": None}
+        else:
+            s = scenario.sensor.supersample
+            bundle = bundles.get(g.rig, s)
+            light = efx.speckle_light(fx, rig.projector, s)
+            # Defocus from the still-water depth: the waves' few mm change the blur by a few per cent.
+            sigma = (efx.defocus_sigma_px(efx.still_water_depth(bundle), cam, side, fx.defocus)
+                     if fx.on("defocus") else None)
+            glint = np.empty(bundle.shape, np.float32) if fx.on("glints") else None
+            for i, t in enumerate(g.times):
+                pattern = rd.speckle_pattern(rig.projector.resolution, scenario.projector_grain_px,
+                                             np.random.default_rng([scenario.seed, g.group_id, i, 0]))
+                rad = rd.render_radiance_speckle(bundle, g.surface, float(t), rig.projector, pattern,
+                                                 scenario.lighting, scenario.post, light=light, glint_out=glint)
+                noise = np.random.default_rng([scenario.seed, g.group_id, i, k + 1])
+                img, mask = efx.expose_with_effects(rad, scenario.sensor, noise, fixed, defocus_px=sigma, glint=glint)
+                yield g.name, i, img, {"glint": mask}
 
 
 def _side_worker(scenario, side, queue):
@@ -104,13 +167,13 @@ def _pairs_parallel(scenario):
                 continue
             if isinstance(item, BaseException):
                 raise item
-            name, i, image = item
+            name, i, image, extra = item
             other = "right" if side == "left" else "left"
             if (name, i) in pending[other]:
-                pair = {side: image, other: pending[other].pop((name, i))}
+                pair = {side: (image, extra), other: pending[other].pop((name, i))}
                 yield name, i, pair["left"], pair["right"]
             else:
-                pending[side][(name, i)] = image
+                pending[side][(name, i)] = (image, extra)
     finally:
         for p in procs:
             if p.is_alive():
@@ -119,8 +182,8 @@ def _pairs_parallel(scenario):
 
 
 def _pairs_serial(scenario):
-    for (name, i, left), (_, _, right) in zip(render_side(scenario, "left"), render_side(scenario, "right")):
-        yield name, i, left, right
+    for (name, i, left, lx), (_, _, right, rx) in zip(render_side(scenario, "left"), render_side(scenario, "right")):
+        yield name, i, (left, lx), (right, rx)
 
 
 def render_session(scenario: Scenario, sink: Callable, progress: Callable | None = None, *,
@@ -146,12 +209,65 @@ def render_session(scenario: Scenario, sink: Callable, progress: Callable | None
     """
     pairs = _pairs_parallel(scenario) if workers >= 2 else _pairs_serial(scenario)
     done = 0
-    for name, i, left, right in pairs:
+    glints = {}
+    for name, i, (left, lx), (right, rx) in pairs:
         sink(name, i, left, right)
+        for side, extra in (("left", lx), ("right", rx)):
+            if extra is not None and extra.get("glint") is not None:
+                glints.setdefault(name, {}).setdefault(side, {})[i] = extra["glint"]
         done += 1
         if progress:
             progress(done)
-    return truth_records(scenario)
+    records = truth_records(scenario)
+    if scenario.effects is not None and scenario.effects.any:
+        records["_effects"] = effects_record(scenario, glints)
+    return records
+
+
+def effects_record(scenario: Scenario, glints: dict | None = None) -> dict:
+    """The camera effects of a scenario as truth: parameters, fixed maps, glint masks.
+
+    Returns
+    -------
+    {"params": dict (JSON-ready), "cameras": {side: {"vignetting": (H, W) float32 lens
+    fall-off, "dust": (H, W) float32 transmission, "dust_spots": (N, 4) column px, row px,
+    radius px, centre transmission, "hot_pixels": (N, 2) row, column px, "hot_stuck": (N)
+    bool, "hot_level": (N) fraction of full scale, "dead_pixels": (M, 2) row, column px,
+    "defocus_sigma_still_px": (H, W) px}}, "glints": {group: {side: (T, H, W) bool}}}
+    (entries only for the effects that are on).
+    """
+    from surfrec.synth import effects as efx
+
+    fx = scenario.effects
+    fixed = camera_fixed_maps(scenario)
+    cams = {}
+    for side in SIDES:
+        f = fixed[side]
+        shape = f.shape
+        c = {}
+        if f.vignette is not None:
+            c["vignetting"] = f.vignette
+        if f.dust is not None:
+            c["dust"] = f.dust
+            c["dust_spots"] = f.dust_spots
+        if fx.on("defects"):
+            c["hot_pixels"] = np.stack(np.unravel_index(f.hot_index, shape), -1)
+            c["hot_stuck"] = f.hot_stuck
+            c["hot_level"] = f.hot_level
+            c["dead_pixels"] = np.stack(np.unravel_index(f.dead_index, shape), -1)
+        if fx.on("defocus"):
+            first = next(iter(scenario.rigs.values()))
+            cam = getattr(first, side)
+            bundle = rd.RayBundle(cam, 1)
+            c["defocus_sigma_still_px"] = efx.defocus_sigma_px(efx.still_water_depth(bundle), cam, side,
+                                                               fx.defocus).astype(np.float32)
+        cams[side] = c
+    out_glints = {}
+    for name, sides in (glints or {}).items():
+        out_glints[name] = {side: np.stack([m[i] for i in sorted(m)]) for side, m in sides.items()}
+    return {"params": fx.to_dict(), "cameras": cams, "glints": out_glints}
+
+
 
 
 def truth_records(scenario: Scenario) -> dict:
