@@ -11,6 +11,8 @@ References named beside each check:
   (cv2.findHomography) to a view through a distortion-free camera.
 """
 
+import dataclasses
+
 import cv2
 import numpy as np
 import pytest
@@ -20,6 +22,7 @@ from surfrec.synth import render as rd
 from surfrec.synth.cameras import Camera
 from surfrec.synth.circlegrid import CircleGrid, facing_pose, render_circle_grid_view
 from surfrec.synth.scenarios import board_corners_world, board_fully_visible, build_scenario
+from surfrec.synth.session import render_session
 
 BOARD = Board("chessboard", 11, 8, 15.0)
 
@@ -115,6 +118,31 @@ def _opencv_alone(img, truth):
     return cv2.cornerSubPix(img.astype(np.float32), sb.astype(np.float32), (half, half), (-1, -1), crit).reshape(-1, 2)
 
 
+class _DetectionLike:
+    def __init__(self, points):
+        self.found = points is not None
+        self.points = points
+
+
+def _found(det):
+    return det if det.found else None
+
+
+def _opencv_alone_any(img):
+    """_opencv_alone for any sample type: the detector on the same 8-bit copy find_target makes."""
+    from surfrec.calib.targets import _to_uint8
+
+    img8, _ = _to_uint8(np.asarray(img))
+    ok, sb = cv2.findChessboardCornersSB(img8, (11, 8), flags=cv2.CALIB_CB_ACCURACY | cv2.CALIB_CB_NORMALIZE_IMAGE)
+    if not ok:
+        return None
+    grid = sb.reshape(8, 11, 2)
+    spacing = min(np.linalg.norm(np.diff(grid, axis=0), axis=2).min(), np.linalg.norm(np.diff(grid, axis=1), axis=2).min())
+    half = int(round(SUBPIX_WINDOW_FRACTION * spacing))
+    crit = (cv2.TERM_CRITERIA_EPS | cv2.TERM_CRITERIA_COUNT, 100, 1e-4)
+    return cv2.cornerSubPix(np.asarray(img, np.float32), sb, (half, half), (-1, -1), crit).reshape(-1, 2).astype(float)
+
+
 def _stuck_pixels(img, truth, rng, fraction=5e-4):
     """Isolated hot (full scale) and dead (zero) pixels: a random fraction, and one within 2 px of every 4th corner.
 
@@ -171,6 +199,71 @@ def test_hot_and_dead_pixels_are_repaired(chessboard_views):
     assert rms[0] < 1.2 * rms[2] and rms[0] < 0.06
     assert rms[0] < 0.6 * rms[1]
     assert np.concatenate(ours).max() < 0.25
+
+
+@pytest.fixture(scope="module")
+def effects_views():
+    """The quick session's target views with every camera effect of the renderer on (surfrec.synth.effects).
+
+    Returns (images, records): (left, right) per view; the renderer's truth,
+    with the true corner pixels and the fixed effect maps (vignetting, dust,
+    hot and dead pixels).
+    """
+    sc = build_scenario("waves", quick=True, seed=0, effects="all")
+    sc = dataclasses.replace(sc, groups=[g for g in sc.groups if g.name == "target"])
+    images = []
+    records = render_session(sc, lambda g, i, left, right: images.append((left, right)), workers=2)
+    return images, records
+
+
+def _corner_errors(images, records, detect):
+    """Per camera and view: (corner errors px, the true corners), against the renderer's true corner pixels."""
+    out = []
+    for k, side in enumerate(("left", "right")):
+        for i, pair in enumerate(images):
+            det = detect(pair[k])
+            truth = records["target"][f"corners_{side}"][i]
+            out.append((side, i, None if det is None else _match(det.points, truth), truth))
+    return out
+
+
+def test_camera_effects_corners(effects_views):
+    # Every effect of the renderer at once: lens vignetting (image corners about 40 % darker),
+    # the projector's hotspot and a room lamp, thin-lens defocus, dust shadows, hot and dead
+    # pixels, high-speed sensor noise, 12-bit data in 16-bit files. Reference: the true corner
+    # pixels (the renderer's projection, checked against cv2.projectPoints in
+    # tests/test_cameras.py); baseline: OpenCV's detector + cornerSubPix on the images as they
+    # are, which finds every view too but whose corners the stuck pixels pull by up to several px.
+    images, records = effects_views
+    assert images[0][0].dtype == np.uint16 and max(int(a.max()) for p in images for a in p) < 4096
+    cams = records["_effects"]["cameras"]
+    ours = _corner_errors(images, records, lambda im: _found(find_target(im, BOARD)))
+    alone = _corner_errors(images, records, lambda im: _found(_DetectionLike(_opencv_alone_any(im))))
+    assert all(e is not None for _, _, e, _ in ours)  # no view lost
+    groups = {"all": [], "vignetted": [], "near a defect": []}
+    base = {k: [] for k in groups}
+    for (side, i, e, truth), (_, _, ea, _) in zip(ours, alone):
+        c = cams[side]
+        h, w = images[0][0].shape
+        ij = np.clip(np.rint(truth).astype(int), 0, [w - 1, h - 1])
+        defect = np.zeros((h, w), bool)
+        for r, col in np.concatenate([c["hot_pixels"], c["dead_pixels"]]):
+            defect[r, col] = True
+        near = np.array([defect[max(y - 7, 0):y + 8, max(x - 7, 0):x + 8].any() for x, y in ij])
+        for key, m in (("all", np.ones(len(e), bool)), ("vignetted", c["vignetting"][ij[:, 1], ij[:, 0]] < 0.9),
+                       ("near a defect", near)):
+            groups[key].append(e[m])
+            base[key].append(ea[m])
+    rms = {k: np.sqrt(np.mean(np.concatenate(v) ** 2)) for k, v in groups.items()}
+    rms_alone = {k: np.sqrt(np.mean(np.concatenate(v) ** 2)) for k, v in base.items()}
+    n = {k: len(np.concatenate(v)) for k, v in groups.items()}
+    assert n["vignetted"] > 100 and n["near a defect"] > 100
+    # The clean views' figure is about 0.05 px (test_chessboard_corners_...; issue 3). Where the
+    # lens passes less than 90 % of the light the edges have less contrast over the same noise,
+    # and the corner noise grows in proportion (common practice): about 0.08 px there.
+    assert rms["all"] < 0.07 and rms["vignetted"] < 0.09 and rms["near a defect"] < 0.08
+    assert rms["all"] < 0.5 * rms_alone["all"] and rms["near a defect"] < 0.25 * rms_alone["near a defect"]
+    assert np.concatenate(groups["all"]).max() < 0.35
 
 
 def test_not_found_says_why(chessboard_views):
