@@ -171,6 +171,10 @@ def parse_board_size(text: str) -> tuple[int, int]:
 def find_target(image, board: Board, *, refine: bool = True) -> Detection:
     """Find the whole target in one greyscale image.
 
+    Isolated hot and dead pixels are repaired first (:func:`repair_defects`),
+    for the detector and for the corner refinement alike; a view without
+    them reaches the detector unchanged.
+
     Parameters
     ----------
     image : ndarray (height, width)
@@ -199,10 +203,9 @@ def find_target(image, board: Board, *, refine: bool = True) -> Detection:
     if span <= 0:
         return Detection(False, None, "the image is uniform (no contrast)")
     if board.kind == "chessboard":
-        ok, pts = cv2.findChessboardCornersSB(img8, board.pattern_size, flags=CHESSBOARD_FLAGS)
-        if not ok or pts is None:
+        pts = _find_chessboard(img8, board)
+        if pts is None:
             return Detection(False, None, f"no {board.describe()} found")
-        pts = pts.reshape(-1, 2).astype(np.float64)
         if refine:
             pts = _refine_corners(a, pts, board)
     else:
@@ -217,6 +220,36 @@ def find_target(image, board: Board, *, refine: bool = True) -> Detection:
     if np.any(pts < -0.5) or np.any(pts[:, 0] > w - 0.5) or np.any(pts[:, 1] > h - 0.5):
         return Detection(False, None, "target points outside the image")
     return Detection(True, pts, "")
+
+
+def _find_chessboard(img8: np.ndarray, board: Board):
+    """The sector-based detector at full size, then on images reduced 2 and 4 times.
+
+    A strongly defocused view (blur sigma of 3 px or more on part of the
+    board) defeats the detector at full size, because its sectors are tuned
+    to sharp corners; reduced by pixel averaging (``cv2.INTER_AREA``) the
+    same blur spans half or a quarter as many pixels, and there the board is
+    found. The corners are then refined at full size by ``cv2.cornerSubPix``
+    as usual, so only finding, not accuracy, comes from the reduced image.
+    A view found at full size never reaches the reduced ones.
+
+    Returns
+    -------
+    points : ndarray (N, 2) float64 px (full-size pixel coordinates) or None.
+    """
+    h, w = img8.shape
+    for factor in (1, 2, 4):
+        if min(h, w) / factor < 120:  # too few pixels per square left to find anything
+            break
+        # Cropped to whole blocks, so that the reduction is exactly factor x factor averaging.
+        small = img8 if factor == 1 else cv2.resize(img8[:h - h % factor, :w - w % factor],
+                                                    (w // factor, h // factor), interpolation=cv2.INTER_AREA)
+        ok, pts = cv2.findChessboardCornersSB(small, board.pattern_size, flags=CHESSBOARD_FLAGS)
+        if ok and pts is not None:
+            # Pixel k of the reduced image averages full-size pixels factor*k ... factor*k + factor - 1,
+            # so its centre is at factor*k + (factor - 1) / 2 (centre-of-pixel origin).
+            return pts.reshape(-1, 2).astype(np.float64) * factor + (factor - 1) / 2.0
+    return None
 
 
 def repair_defects(image, threshold: float = DEFECT_THRESHOLD):
