@@ -573,7 +573,8 @@ class SpeckleLight:
 
     hotspot_axis : unit world direction of the projector's beam axis, or None (off).
     hotspot_sigma : beam 1-sigma, rad.
-    lamp : world mm of the room lamp, or None (uniform ambient).
+    lamp : world mm of the room lamp (for its glints and its light), or None.
+    lamp_ambient : the lamp is the ambient light (uneven), else the ambient is uniform.
     lamp_ref : the lamp's irradiance cos/r^2 on still water at the world origin (1/mm^2).
     glints : Glints or None. sub_times : time offsets (s) per supersample row, or None.
     """
@@ -581,6 +582,7 @@ class SpeckleLight:
     hotspot_axis: np.ndarray | None = None
     hotspot_sigma: float = 0.0
     lamp: np.ndarray | None = None
+    lamp_ambient: bool = False
     lamp_ref: float = 1.0
     glints: Glints | None = None
     sub_times: tuple | None = None
@@ -683,6 +685,7 @@ def speckle_light(effects: CameraEffects, projector, supersample: int) -> Speckl
         used = True
     if effects.on("illumination") or effects.on("glints"):
         light.lamp = np.asarray(effects.room_lamp_mm, float)
+        light.lamp_ambient = effects.on("illumination")
         light.lamp_ref = lamp_reference(light.lamp)
         used = True
     if effects.on("glints"):
@@ -744,7 +747,8 @@ def speckle_light_tile(light: SpeckleLight, lighting, x, y, z, hx, hy, value, pr
     The same radiometry as the clean renderer (Lambertian screen lit by a pinhole
     projector, plus ambient), times the projector's hotspot, with the room lamp
     as the ambient light (only with "illumination") and the Beckmann glints of
-    the projector (carrying its pattern) and of the lamp added. One compiled
+    the projector (carrying its pattern) and of the lamp added (what :func:`hotspot`,
+    :func:`lamp_factor` and :func:`glint_radiance` compute on whole arrays). One compiled
     loop, because the dozens of whole-array steps it replaces cost as much as
     the ray casting itself.
 
@@ -771,7 +775,7 @@ def speckle_light_tile(light: SpeckleLight, lighting, x, y, z, hx, hy, value, pr
                   none if hidden is None else hidden, shaded is not None, hidden is not None,
                   np.asarray(projector.centre, float), float(projector.centre[2]),
                   np.asarray(projector.rotation[2], float), light.hotspot_axis is not None, beam,
-                  float(light.hotspot_sigma or 1.0), light.lamp is not None and light.hotspot_axis is not None, lamp,
+                  float(light.hotspot_sigma or 1.0), light.lamp is not None and light.lamp_ambient, lamp,
                   float(light.lamp_ref), np.asarray(cam_centre, float), gl is not None,
                   0.0 if gl is None else gl.projector_peak, 1.0 if gl is None else gl.projector_roughness ** 2,
                   0.0 if gl is None else gl.lamp_peak, 1.0 if gl is None else gl.lamp_roughness ** 2,

@@ -43,7 +43,6 @@ def main():
     sigma = efx.defocus_sigma_px(efx.still_water_depth(bundle), cam, "left", fx.effects.defocus)
     glint = np.empty(bundle.shape, np.float32)
     lamp = np.asarray(fx.effects.room_lamp_mm)
-    depth = np.empty((bundle.shape[0] // s, bundle.shape[1] // s))
     bsensor_c = rd.SensorModel(**{**clean.sensor.to_dict(), "supersample": BOARD_SUPERSAMPLE})
     bsensor_f = rd.SensorModel(**{**fx.sensor.to_dict(), "supersample": BOARD_SUPERSAMPLE})
     bdepth = np.empty((board_bundle.shape[0] // BOARD_SUPERSAMPLE, board_bundle.shape[1] // BOARD_SUPERSAMPLE))
@@ -67,7 +66,6 @@ def main():
         efx.expose_with_effects(rad, bsensor_f, np.random.default_rng(1), fixed,
                                 defocus_px=efx.defocus_sigma_px(bdepth, cam, "left", fx.effects.defocus))
 
-    del depth
     speckle_fx()  # compile the numba kernel and warm caches outside the timing
     board_fx()
     for name, pair in (("speckle frame", (speckle_clean, speckle_fx)), ("target view", (board_clean, board_fx))):
