@@ -5,6 +5,9 @@ Usage::
     surfrec synth /tmp/fullcal                      # once (about 4 minutes)
     python tests/benchmarks/bench_calibrate.py /tmp/fullcal [--repeats 3]
 
+    surfrec synth /tmp/fx --camera-effects all      # the same session (same seed) with camera effects
+    python tests/benchmarks/bench_calibrate.py /tmp/fullcal --effects /tmp/fx [--no-timing]
+
 Times (medians of the repeats, one process, one core for OpenCV):
 
 - target detection per image: ours (cv2.findChessboardCornersSB with
@@ -17,6 +20,13 @@ Accuracy against the session's truth: focal lengths, principal points,
 pixel-to-ray mapping over the whole image (after the best-fitting rotation),
 baseline, stereo rotation, reprojection and epipolar RMS; with the moved
 scenario's target-moved/ folder present, also the re-posing error.
+
+With ``--effects FX_SESSION`` (the same scenario and seed rendered with
+camera effects): the calibration from the clean views and from the views
+with effects side by side in one run, ours and, as the reference, OpenCV's
+detector + cv2.cornerSubPix on the images as they are (no defect repair):
+views found and used, corner error against the true corner pixels,
+reprojection and epipolar RMS, pixel-to-ray RMS per camera.
 """
 
 from __future__ import annotations
@@ -73,7 +83,15 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("session", type=Path)
     ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--effects", type=Path, metavar="FX_SESSION",
+                    help="the same session rendered with camera effects: compare the calibrations side by side")
+    ap.add_argument("--no-timing", action="store_true", help="accuracy only (skip the timed runs)")
     args = ap.parse_args(argv)
+    if args.effects is not None:
+        cv2.setNumThreads(1)
+        compare_effects(args.session, args.effects)
+        if args.no_timing:
+            return 0
     cv2.setNumThreads(1)
     s = args.session
     truth = read_truth(s / "truth.h5")
@@ -142,6 +160,64 @@ def main(argv=None):
               f"translation {np.linalg.norm(new.translation - t_m):.3f} mm from the moved truth; "
               f"reported move {new.pose_change['rotation_deg']:.4f} deg")
     return 0
+
+
+def opencv_alone(image, board=BOARD):
+    """The reference detection: OpenCV's detector and cv2.cornerSubPix (our window) on the image as it is."""
+    from surfrec.calib.targets import SUBPIX_WINDOW_FRACTION, Detection, _to_uint8
+
+    img8, _ = _to_uint8(np.asarray(image))
+    ok, pts = cv2.findChessboardCornersSB(img8, board.pattern_size, flags=CHESSBOARD_FLAGS)
+    if not ok:
+        return Detection(False, None, "not found")
+    grid = pts.reshape(board.rows, board.cols, 2)
+    spacing = min(np.linalg.norm(np.diff(grid, axis=0), axis=2).min(), np.linalg.norm(np.diff(grid, axis=1), axis=2).min())
+    half = int(np.clip(round(SUBPIX_WINDOW_FRACTION * spacing), 2, 30))
+    crit = (cv2.TERM_CRITERIA_EPS | cv2.TERM_CRITERIA_COUNT, 100, 1e-4)
+    ref = cv2.cornerSubPix(np.asarray(image, np.float32), pts, (half, half), (-1, -1), crit)
+    return Detection(True, ref.reshape(-1, 2).astype(np.float64), "")
+
+
+def calibration_figures(session: Path, detect):
+    """Detect in every target view of ``session`` with ``detect``, calibrate, and measure against its truth."""
+    truth = read_truth(session / "truth.h5")
+    frames = {side: open_frames(str(session / "target" / side)) for side in ("left", "right")}
+    size, n = frames["left"].size, len(frames["left"])
+    dets = {side: [detect(frames[side].read_raw(i)) for i in range(n)] for side in frames}
+    corners = truth["groups"]["target"]
+    err = []
+    for side in frames:
+        for i, d in enumerate(dets[side]):
+            if d.found:
+                t = np.asarray(corners[f"corners_{side}"][i])
+                err.append(np.linalg.norm(d.points[:, None] - t[None], axis=2).min(axis=0))
+    err = np.concatenate(err)
+    calib = calibrate_rig(dets["left"], dets["right"], BOARD, size)
+    cams = {side: Camera.from_dict(truth["rigs"]["rig"][side]) for side in frames}
+    ray = {side: float(np.sqrt(np.mean(ray_error_px(getattr(calib, f"{side}_matrix"),
+                                                    getattr(calib, f"{side}_distortion"), cams[side])[0] ** 2)))
+           for side in frames}
+    return {"n": n, "found": {side: sum(d.found for d in dets[side]) for side in frames},
+            "used": {side: sum(side in v.roles for v in calib.views) for side in frames},
+            "stereo": sum("stereo" in v.roles for v in calib.views),
+            "corner_rms": float(np.sqrt(np.mean(err ** 2))), "corner_p99": float(np.percentile(err, 99)),
+            "corner_max": float(err.max()), "rms": calib.rms_px, "epi": calib.epipolar_rms_px, "ray": ray}
+
+
+def compare_effects(clean: Path, fx: Path):
+    runs = [("clean views, ours", calibration_figures(clean, lambda im: find_target(im, BOARD))),
+            ("effects, ours", calibration_figures(fx, lambda im: find_target(im, BOARD))),
+            ("effects, OpenCV alone (reference)", calibration_figures(fx, opencv_alone))]
+    base = runs[0][1]
+    print(f"\ncamera effects: {fx} against {clean} ({base['n']} view pairs each)")
+    print(f"  {'':36s} {'found L/R':>9s} {'used L/R/st':>11s} {'corner RMS/p99/max px':>22s} "
+          f"{'reproj px':>9s} {'epi px':>7s} {'ray L px':>9s} {'ray R px':>9s}  ray ratio L/R")
+    for name, f in runs:
+        print(f"  {name:36s} {f['found']['left']:>4d}/{f['found']['right']:<4d} "
+              f"{f['used']['left']:>4d}/{f['used']['right']}/{f['stereo']:<3d} "
+              f"{f['corner_rms']:8.4f}/{f['corner_p99']:.3f}/{f['corner_max']:.3f} {f['rms']:9.4f} {f['epi']:7.4f} "
+              f"{f['ray']['left']:9.4f} {f['ray']['right']:9.4f}  "
+              f"{f['ray']['left'] / base['ray']['left']:.2f}/{f['ray']['right'] / base['ray']['right']:.2f}")
 
 
 if __name__ == "__main__":
