@@ -86,12 +86,18 @@ def main(argv=None):
     ap.add_argument("--effects", type=Path, metavar="FX_SESSION",
                     help="the same session rendered with camera effects: compare the calibrations side by side")
     ap.add_argument("--no-timing", action="store_true", help="accuracy only (skip the timed runs)")
+    ap.add_argument("--render-effects", metavar="SETS", default=None,
+                    help="also render the session's target views (full size, seed 0) with each ';'-separated set "
+                         "of camera effects, e.g. 'defocus;dust,defects', and calibrate from them")
     args = ap.parse_args(argv)
+    if args.render_effects:
+        for fx in args.render_effects.split(";"):
+            rendered_effects(fx.strip())
     if args.effects is not None:
         cv2.setNumThreads(1)
         compare_effects(args.session, args.effects)
-        if args.no_timing:
-            return 0
+    if args.no_timing:
+        return 0
     cv2.setNumThreads(1)
     s = args.session
     truth = read_truth(s / "truth.h5")
@@ -202,6 +208,29 @@ def calibration_figures(session: Path, detect):
             "stereo": sum("stereo" in v.roles for v in calib.views),
             "corner_rms": float(np.sqrt(np.mean(err ** 2))), "corner_p99": float(np.percentile(err, 99)),
             "corner_max": float(err.max()), "rms": calib.rms_px, "epi": calib.epipolar_rms_px, "ray": ray}
+
+
+def rendered_effects(fx: str):
+    """Render the full-size waves session's target views (seed 0) with effects ``fx`` in memory, calibrate, measure."""
+    import dataclasses
+
+    from surfrec.synth.scenarios import build_scenario
+    from surfrec.synth.session import render_session
+
+    sc = build_scenario("waves", seed=0, effects=fx)
+    sc = dataclasses.replace(sc, groups=[g for g in sc.groups if g.name == "target"])
+    imgs = []
+    render_session(sc, lambda g, i, left, right: imgs.append((left, right)), workers=2)
+    dets = {side: [find_target(p[k], BOARD) for p in imgs] for k, side in enumerate(("left", "right"))}
+    calib = calibrate_rig(dets["left"], dets["right"], BOARD, imgs[0][0].shape[::-1])
+    parts = []
+    for side in ("left", "right"):
+        cam = getattr(sc.rigs["rig"], side)
+        k = getattr(calib, f"{side}_matrix")
+        err, _ = ray_error_px(k, getattr(calib, f"{side}_distortion"), cam)
+        parts.append(f"{side} found {sum(d.found for d in dets[side])} fx {k[0, 0] - cam.matrix[0, 0]:+.2f} px "
+                     f"ray RMS {np.sqrt(np.mean(err ** 2)):.3f} px")
+    print(f"effects {fx}: " + "; ".join(parts) + f"; reprojection RMS {calib.rms_px:.4f} px")
 
 
 def compare_effects(clean: Path, fx: Path):
