@@ -274,3 +274,31 @@ def test_warning_rules():
     assert "was the water still" in wavy[0] and "cannot be told from a calibration error" in wavy[1]
     assert "plane-fit RMS is 0.300 mm" in _warnings({**base, "fit_rms_mm": 0.3}, 3)[0]
     assert "one still frame" in _warnings({**base, "noise_floor_median_mm": float("nan")}, 1)[0]
+
+
+def test_a_still_glint_is_filled_from_the_plane_not_dropped(waves):
+    # The still frames' disparities with a hole where a glint sat (marked fill, as `surfrec datum`
+    # marks points whose windows held saturated pixels): the hole is valid in the datum, its
+    # reference disparity is the plane's (plane_disparity, checked above against triangulation and
+    # the exact synthetic disparities) within 0.01 px, and the still residual covers it.
+    _, m, _ = waves["result"]
+    rect = waves["rig"].rectification
+    gu, gv = matching_grid(waves["rig"].image_size, SPACING, WINDOW)
+    d = m.disparity.copy()
+    vv, uu = np.meshgrid(gv, gu, indexing="ij")
+    hole = (uu - 256) ** 2 + (vv - 190) ** 2 < 40 ** 2
+    d[:, hole] = np.nan
+    fit = fit_still_water(d, gu, gv, rect["Q"], rect["R1"], sigma=m.sigma, attempted=m.attempted & ~hole[None],
+                          fill=hole, window=WINDOW)
+    datum = fit.datum
+    assert datum.valid[hole].all() and fit.stats["n_filled"] == hole.sum()
+    n, off = true_plane(waves["left"])
+    plane = plane_disparity(n, off, uu[hole], vv[hole], rect["R1"], rect["P1"], rect["P2"])
+    assert np.max(np.abs(datum.disparity[hole] - plane)) < 0.01
+    centre = triangulate(256.0, 190.0, float(np.mean(datum.disparity[hole])), rect["Q"], rect["R1"])
+    xy = (centre - datum.world_to_left_camera[:3, 3]) @ datum.world_to_left_camera[:3, :3]
+    assert np.isfinite(datum.still_residual_at(np.array([xy[0]]), np.array([xy[1]]))).all()
+    # Without fill the hole stays out of the datum.
+    plain = fit_still_water(d, gu, gv, rect["Q"], rect["R1"], sigma=m.sigma, attempted=m.attempted & ~hole[None],
+                            window=WINDOW).datum
+    assert not plain.valid[hole].any()

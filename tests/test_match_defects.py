@@ -203,3 +203,76 @@ def test_masked_estimate_agrees_with_a_huber_m_estimator(pair):
     assert abs(huber - d_true) < 0.02
     assert abs(ours - huber) < 0.01
     assert abs(plain - d_true) > 2 * abs(ours - d_true)
+
+
+def test_shoulders_and_robust_pass_remove_a_glints_unsaturated_light(pair):
+    # Glints of random place, size and brightness (Gaussian lobes of added light, saturating at the
+    # core) in the right window. Masking the saturated core alone leaves the unsaturated shoulder to
+    # drag the estimate; with the shoulders grown (glint_shoulders) and the window solved again
+    # without the pixels whose residual exceeds 2.5 robust spreads (a skipped M-estimator; Hampel et
+    # al., Robust Statistics, 1986), the RMS error against the exact shift (fourier_shift) is less
+    # than half. Points rejected (too few good pixels) count for neither.
+    left, right, d_true = pair
+    rng = np.random.default_rng(9)
+    yy, xx = np.mgrid[0:96, 0:160]
+    us, vs, d0 = np.array([76]), np.array([48]), np.array([3.0])
+    plain, robust = [], []
+    for _ in range(24):
+        amp, sg, cx, cy = rng.uniform(0.8, 1.5), rng.uniform(2.5, 5), rng.uniform(62, 86), rng.uniform(40, 56)
+        g = right + (amp * np.exp(-((yy - cy) ** 2 + (xx - cx) ** 2) / (2 * sg ** 2))).astype(np.float32)
+        core = bad_pixel_mask(g, saturation=0.98, halo_px=2, envelope_px=None)
+        coef = row_spline_coefficients(fill_bad_pixels(g, core)[None], 3)
+        plain.append(refine(left[None], coef, us, vs, d0, 21, order=3, bad_right=core.astype(np.uint8)[None])[0][0])
+        grown = bad_pixel_mask(g, saturation=0.98, halo_px=2)
+        coef = row_spline_coefficients(fill_bad_pixels(g, grown)[None], 3)
+        robust.append(refine(left[None], coef, us, vs, d0, 21, order=3, bad_right=grown.astype(np.uint8)[None],
+                             robust=np.array([True]))[0][0])
+    rms = lambda a: float(np.sqrt(np.nanmean((np.asarray(a) - d_true) ** 2)))
+    assert np.isfinite(robust).sum() >= 12
+    assert rms(robust) < 0.5 * rms(plain)
+    assert rms(robust) < 0.03
+
+
+def test_robust_pass_leaves_a_clean_window_alone(pair):
+    # On a window without outliers the robust pass changes the estimate by far less than its noise.
+    left, right, d_true = pair
+    coef = row_spline_coefficients(right[None], 3)
+    us, vs, d0 = np.arange(30, 130, 9), np.full(12, 48), np.full(12, 3.0)
+    a = refine(left[None], coef, us, vs, d0, 21, order=3)
+    b = refine(left[None], coef, us, vs, d0, 21, order=3, robust=np.ones(12, bool))
+    assert np.max(np.abs(a[0] - b[0])) < 0.003
+    assert np.max(np.abs(b[0] - d_true)) < 0.01
+
+
+def test_glint_shoulders_follow_the_added_light():
+    # Speckle with a glint lobe added (saturating at its core) and, apart, a bright patch of the
+    # scene that does not saturate. The grown mask covers the lobe where its light exceeds a quarter
+    # of the speckle contrast (the rule of glint_shoulders, checked against the known lobe), and
+    # leaves the patch alone.
+    from surfrec.match.defects import glint_shoulders
+
+    rng = np.random.default_rng(8)
+    img = (0.05 + 0.6 * _speckle((200, 260), 4.0, rng)).astype(np.float32)
+    yy, xx = np.mgrid[0:200, 0:260]
+    lobe = 2.0 * np.exp(-((yy - 100) ** 2 + (xx - 80) ** 2) / (2 * 6.0 ** 2))
+    img = np.clip(img + lobe, 0, 1).astype(np.float32)
+    img[80:120, 190:230] += 0.3  # a bright patch, not saturated
+    sat = img >= 0.98
+    grown = glint_shoulders(img, sat)
+    assert grown[sat].all() and grown.sum() > 1.5 * sat.sum()
+    strong = lobe > 0.5  # far above a quarter of the 0.6 contrast
+    assert grown[strong].mean() > 0.9
+    assert not grown[lobe < 0.02].any()
+    assert not grown[80:120, 190:230].any()
+
+
+def test_coded_masks_tell_glints_from_defects():
+    from surfrec.match.defects import DEFECT, GLINT, DefectSettings
+
+    img = np.full((40, 40), 0.4, np.float32)
+    img[10, 10] = 1.0
+    fixed = np.zeros((40, 40), bool)
+    fixed[30, 30] = True
+    code = DefectSettings(0.98, 1, fixed, None).coded_mask(img, "left")
+    assert code[10, 10] == GLINT and code[30, 30] == DEFECT
+    assert DefectSettings(0.98, 1, fixed, None).coded_mask(img, "right")[30, 30] == 0

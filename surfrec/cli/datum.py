@@ -173,8 +173,12 @@ def command(rig_path, left, right, output, origin, rotate_deg, window, spacing, 
 
     rect = rig.rectification
     try:
+        # A glint of the still water (saturated pixels) is no occluder: it neither marks a halo
+        # nor leaves the footprint; the water under it is seen by both cameras, and the
+        # reference there comes from the smooth still-water fit.
+        glint = matches.bad_pixels.sum(axis=0) >= max(1, math.ceil(n / 2))
         fit = fit_still_water(matches.disparity, grid_u, grid_v, rect["Q"], rect["R1"], sigma=matches.sigma,
-                              attempted=matches.attempted, window=window, origin=origin, rotate_deg=rotate_deg,
+                              attempted=matches.attempted & ~matches.bad_pixels, fill=glint, window=window, origin=origin, rotate_deg=rotate_deg,
                               degree=residual_degree, step_mm=residual_step)
     except ValueError as exc:
         raise InputError(f"still frames: {exc} (were they taken with this rig, of lit, still water?)") from None

@@ -260,7 +260,7 @@ def still_residual_at(residual_x, residual_y, still_residual, x, y) -> np.ndarra
     return interp(np.stack([y.ravel(), x.ravel()], axis=1)).reshape(x.shape)
 
 
-def fit_still_water(disparities, u, v, q, r1, *, sigma=None, attempted=None, window: int | None = None,
+def fit_still_water(disparities, u, v, q, r1, *, sigma=None, attempted=None, fill=None, window: int | None = None,
                     origin=(0.0, 0.0), rotate_deg: float = 0.0, degree: int = DEFAULT_DEGREE,
                     step_mm: float = DEFAULT_STEP_MM, threshold: float = DEFAULT_THRESHOLD) -> StillWaterFit:
     """The still-water datum from disparities of a few still frames.
@@ -287,6 +287,11 @@ def fit_still_water(disparities, u, v, q, r1, *, sigma=None, attempted=None, win
     sigma : (F, Nv, Nu) px or None, the matcher's 1-sigma per point (for
         the predicted noise and the "water moved" test).
     attempted : (Nv, Nu) or (F, Nv, Nu) bool or None, points inside both views that were matched.
+    fill : (Nv, Nu) bool or None, points both cameras see but the frames could not
+        measure (a glint of the still water): where not valid, their reference
+        disparity comes from a smooth fit of the valid ones (degree ``degree`` in
+        u, v), they are marked valid (a reference is there) and the still
+        residual's footprint reaches over them (``stats["n_filled"]``).
     window : matching window side, px, or None to skip the occluder test.
     origin, rotate_deg : tank frame (see :func:`datum_frame`).
     degree : total degree of the still-residual polynomial.
@@ -364,11 +369,26 @@ def fit_still_water(disparities, u, v, q, r1, *, sigma=None, attempted=None, win
     dpts = (mean_pts[valid] - m[:3, 3]) @ m[:3, :3]
     xs, ys = dpts[:, 0], dpts[:, 1]
     shape = fit_polynomial_surface(xs, ys, point_residual[valid], degree)
+    filled = np.zeros((nv, nu), bool)
+    reach_x, reach_y = xs, ys
+    if fill is not None:
+        # Points the frames could not measure though both cameras see them (a still glint): their
+        # reference disparity from a smooth fit of the measured ones (the still water's disparity is
+        # affine in rectified u, v for a plane, plus the small smooth residual), and they count for
+        # the footprint of the still residual.
+        filled = np.asarray(fill, bool) & ~valid
+        if filled.any():
+            dfit = fit_polynomial_surface(uu[valid], vv[valid], ref[valid], degree)
+            ref = ref.copy()
+            ref[filled] = dfit(uu[filled], vv[filled])
+            fpts = triangulate(uu[filled], vv[filled], ref[filled], q, r1)
+            fd = (fpts - m[:3, 3]) @ m[:3, :3]
+            reach_x, reach_y = np.concatenate([xs, fd[:, 0]]), np.concatenate([ys, fd[:, 1]])
     gx = _grid_axis(xs.min(), xs.max(), step_mm)
     gy = _grid_axis(ys.min(), ys.max(), step_mm)
     gxx, gyy = np.meshgrid(gx, gy)
     residual = shape(gxx, gyy)
-    residual[~_footprint(xs, ys, gxx, gyy, step_mm)] = np.nan
+    residual[~_footprint(reach_x, reach_y, gxx, gyy, step_mm)] = np.nan
     rough = point_residual[valid] - shape(xs, ys)
 
     stats = {
@@ -382,6 +402,7 @@ def fit_still_water(disparities, u, v, q, r1, *, sigma=None, attempted=None, win
         "n_valid": int(valid.sum()),
         "n_grid": int(nv * nu),
         "n_occluded": int(occluded.sum()),
+        "n_filled": int(filled.sum()),
         "camera_height_mm": float(-offset),
         "predicted_noise_mm": float("nan"),
     }
@@ -398,7 +419,7 @@ def fit_still_water(disparities, u, v, q, r1, *, sigma=None, attempted=None, win
              "residual_centre_mm": list(shape.centre), "residual_scale_mm": list(shape.scale),
              **{k: v for k, v in stats.items() if k != "fit_rms_mm"}}
     datum = Datum(world_to_left_camera=m, plane_normal=normal, plane_offset=offset, u=u, v=v, disparity=ref,
-                  valid=valid, residual_x=gx, residual_y=gy, still_residual=residual, noise_floor=noise,
+                  valid=valid | filled, residual_x=gx, residual_y=gy, still_residual=residual, noise_floor=noise,
                   fit_rms_mm=fit_rms, n_frames=n_frames, rig_sha256="", attrs=attrs,
                   point_residual=point_residual)
     return StillWaterFit(datum=datum, heights=heights, inliers=inliers, shape=shape, stats=stats,

@@ -33,8 +33,12 @@ __all__ = ["DefectSettings", "bad_pixel_mask", "fill_bad_pixels", "estimate_fixe
            "prepare_frame"]
 
 # Defaults (recorded in disparity.h5 with the other matcher settings).
+GLINT = 1  # mask bit: saturated, or the unsaturated shoulder of a saturated area
+DEFECT = 2  # mask bit: a fixed defect of the camera (hot, dead)
 SATURATION = 0.98  # fraction of full scale at and above which a pixel counts as saturated
 EXTREMUM_SPREADS = 0.4  # see estimate_fixed_defects
+GLINT_ENVELOPE_PX = 9  # about two speckle grains of the default 4 px speckle
+GLINT_RISE = 0.25  # see glint_shoulders
 HALO_PX = 2  # growth of a saturated or defective area, px (PSF and interpolation taps)
 
 
@@ -60,6 +64,15 @@ class DefectSettings:
         """Bad-pixel mask (bool, original px) of one frame of ``side``."""
         return bad_pixel_mask(frame, saturation=self.saturation, fixed=self.fixed[side], halo_px=self.halo_px)
 
+    def coded_mask(self, frame, side: str) -> np.ndarray:
+        """Bad pixels of one frame coded by cause (uint8, original px): GLINT | DEFECT bits, 0 good."""
+        glint = bad_pixel_mask(frame, saturation=self.saturation, fixed=None, halo_px=self.halo_px)
+        out = glint.astype(np.uint8) * np.uint8(GLINT)
+        if self.fixed[side] is not None:
+            defect = bad_pixel_mask(frame, saturation=None, fixed=self.fixed[side], halo_px=self.halo_px)
+            out |= defect.astype(np.uint8) * np.uint8(DEFECT)
+        return out
+
     def to_dict(self) -> dict:
         return {"saturation": float("nan") if self.saturation is None else float(self.saturation),
                 "halo_px": self.halo_px,
@@ -71,7 +84,56 @@ def _as_mask(m):
     return None if m is None else np.asarray(m, dtype=bool)
 
 
-def bad_pixel_mask(frame, *, saturation: float | None = SATURATION, fixed=None, halo_px: int = HALO_PX) -> np.ndarray:
+def glint_shoulders(frame, saturated, *, envelope_px: int = GLINT_ENVELOPE_PX, rise: float = GLINT_RISE) -> np.ndarray:
+    """Saturated areas grown over the glint's unsaturated shoulder.
+
+    A glint adds light on top of the speckle, and past its saturated core the
+    added light fades over several pixels: there the dark speckle grains are
+    no longer dark. So the local minimum over ``envelope_px`` (a grey-level
+    erosion, which follows the dark grains) rises above that of the
+    surrounding field. A pixel belongs to the shoulder where its local
+    minimum exceeds the field's (a robust, coarse background of the local
+    minima) by more than ``rise`` of the field's speckle contrast (background
+    of local maxima minus background of local minima), and it is connected
+    to a saturated core: bright patches of the scene itself are left alone.
+
+    Parameters
+    ----------
+    frame : (H, W) float, scaled to [0, 1].  saturated : (H, W) bool.
+    envelope_px : px, side of the erosion (about two speckle grains).
+    rise : dimensionless fraction of the local speckle contrast.
+
+    Returns
+    -------
+    (H, W) bool, the saturated cores and their shoulders.
+    """
+    f = np.ascontiguousarray(frame, dtype=np.float32)
+    k = cv2.getStructuringElement(cv2.MORPH_RECT, (envelope_px, envelope_px))
+    lo = cv2.erode(f, k)
+    hi = cv2.dilate(f, k)
+    base_lo = _coarse_background(lo)
+    base_hi = _coarse_background(hi)
+    shoulder = (lo - base_lo) > rise * np.maximum(base_hi - base_lo, 1e-3)
+    cand = np.ascontiguousarray(shoulder | saturated).view(np.uint8)
+    n, labels = cv2.connectedComponents(cand, connectivity=8)
+    keep = np.zeros(n, bool)
+    keep[np.unique(labels[saturated])] = True
+    keep[0] = False
+    return keep[labels]
+
+
+def _coarse_background(img, cell: int = 16):
+    # The field's level on scales of many speckles: block means, a 5x5 median over blocks (robust to
+    # a glint filling a few blocks), back to full size.
+    h, w = img.shape
+    small = cv2.resize(img, (max(1, w // cell), max(1, h // cell)), interpolation=cv2.INTER_AREA)
+    if min(small.shape) >= 5:
+        small = cv2.medianBlur(small, 5)
+    return cv2.resize(small, (w, h), interpolation=cv2.INTER_LINEAR)
+
+
+def bad_pixel_mask(frame, *, saturation: float | None = SATURATION, fixed=None, halo_px: int = HALO_PX,
+                   envelope_px: int | None = GLINT_ENVELOPE_PX) -> np.ndarray:
     """Pixels of one frame that must not enter a correlation window.
 
     Parameters
@@ -83,6 +145,8 @@ def bad_pixel_mask(frame, *, saturation: float | None = SATURATION, fixed=None, 
     halo_px : px, radius by which the bad areas are grown: a glint's light
         spreads past its saturated core through the lens PSF, and every
         interpolation tap that touches a bad pixel carries it.
+    envelope_px : px or None, see :func:`glint_shoulders` (None: saturated
+        pixels only, no shoulders).
 
     Returns
     -------
@@ -91,6 +155,8 @@ def bad_pixel_mask(frame, *, saturation: float | None = SATURATION, fixed=None, 
     a = np.asarray(frame)
     if saturation is not None and saturation < 1.5:
         bad = a >= np.float32(saturation)
+        if envelope_px and bad.any():
+            bad = glint_shoulders(a, bad, envelope_px=envelope_px)
     else:
         bad = np.zeros(a.shape, bool)
     if fixed is not None:
@@ -108,9 +174,13 @@ def fill_bad_pixels(frame, bad, *, sigma_px: float = 2.0) -> np.ndarray:
     """Replace bad pixels by a smooth fill from their good neighbours.
 
     Normalised convolution (Knutsson & Westin, CVPR 1993): G * (I m) / G * m
-    with m the good-pixel indicator and G a Gaussian of ``sigma_px``; where
-    no good pixel is near (G * m below 1e-3, a large blob), the next wider
-    Gaussian fills in. Good pixels keep their values exactly.
+    with m the good-pixel indicator and G a Gaussian of ``sigma_px``, where
+    G * m >= 1e-3 (near good pixels); deeper inside a large blob, the
+    field's coarse level (block means of the good pixels, a robust 5x5 median
+    over blocks). Good pixels keep their values exactly. The fill carries no
+    speckle and never enters the refinement's sums (the pixels stay masked);
+    it only keeps extreme values away from the interpolation and the integer
+    search, so a cheap smooth fill is enough.
 
     Parameters
     ----------
@@ -126,19 +196,14 @@ def fill_bad_pixels(frame, bad, *, sigma_px: float = 2.0) -> np.ndarray:
     img = np.asarray(frame, np.float32)
     good = (~bad).astype(np.float32)
     out = img.copy()
-    todo = bad.copy()
-    sigma = float(sigma_px)
-    for _ in range(6):
-        num = cv2.GaussianBlur(img * good, (0, 0), sigma, borderType=cv2.BORDER_REFLECT)
-        den = cv2.GaussianBlur(good, (0, 0), sigma, borderType=cv2.BORDER_REFLECT)
-        ok = todo & (den > 1e-3)  # 1e-3: the fill is an average of at least this weight of good pixels
-        out[ok] = num[ok] / den[ok]
-        todo &= ~ok
-        if not todo.any():
-            break
-        sigma *= 3.0
-    if todo.any():
-        out[todo] = float(np.mean(img[~bad])) if (~bad).any() else 0.0
+    num = cv2.GaussianBlur(img * good, (0, 0), float(sigma_px), borderType=cv2.BORDER_REFLECT)
+    den = cv2.GaussianBlur(good, (0, 0), float(sigma_px), borderType=cv2.BORDER_REFLECT)
+    near = bad & (den > 1e-3)  # 1e-3: the fill is an average of at least this weight of good pixels
+    out[near] = num[near] / den[near]
+    deep = bad & ~near
+    if deep.any():
+        level = _coarse_background(np.where(bad, np.float32(np.median(img[~bad])) if (~bad).any() else 0.0, img))
+        out[deep] = level[deep]
     return out
 
 
@@ -153,16 +218,53 @@ def prepare_frame(frame, side: str, rectifier, settings: DefectSettings | None):
 
     Returns
     -------
-    rectified : (H, W) float32; bad : (H, W) uint8 rectified mask (1 = bad), or
-        None when the frame has no bad pixel.
+    rectified : (H, W) float32; bad : (H, W) uint8 rectified mask, non-zero = bad
+        (bits GLINT for saturated pixels and their shoulders, DEFECT for the
+        fixed defects), or None when the frame has no bad pixel.
     """
     if settings is None:
         return rectifier(frame, side), None
-    bad = settings.mask(frame, side)
+    code = settings.coded_mask(frame, side)
+    bad = code != 0
     if not bad.any():
         return rectifier(frame, side), None
     filled = fill_bad_pixels(np.asarray(frame, np.float32), bad)
-    return rectifier(filled, side), rectify_mask(bad, *rectifier.maps[side])
+    maps = rectifier.maps[side]
+    rect = np.zeros(maps[0].shape, np.uint8)
+    for bit in (GLINT, DEFECT):
+        part = (code & bit) != 0
+        if part.any():
+            rect |= rectify_mask(part, *maps) * np.uint8(bit)
+    return rectifier(filled, side), rect
+
+
+def near_bad_pixels(bad_left, bad_right, us, vs, shift, size: int, bits: int = 0xFF) -> np.ndarray:
+    """Points with a bad pixel within a square of ``size`` px about them (left, or right at ``shift``).
+
+    Parameters
+    ----------
+    bad_left, bad_right : (T, H, W) or (H, W) uint8 rectified masks, or None.
+    us, vs : (N,) int px, rectified left.  shift : (N,) int px, the disparity (right = u - shift).
+    size : odd px, side of the square.
+    bits : which mask bits count (default: any).
+
+    Returns
+    -------
+    (N,) bool.
+    """
+    out = np.zeros(np.shape(us), bool)
+    for mask, off in ((bad_left, 0), (bad_right, shift)):
+        if mask is None:
+            continue
+        m = (np.asarray(mask) & np.uint8(bits)) != 0
+        m = m.any(axis=0) if m.ndim == 3 else m
+        if not m.any():
+            continue
+        box = cv2.boxFilter(m.astype(np.float32), -1, (size, size), normalize=False, borderType=cv2.BORDER_CONSTANT)
+        cu = np.asarray(us) - off
+        inside = (cu >= 0) & (cu < box.shape[1])
+        out[inside] |= box[np.asarray(vs)[inside], cu[inside]] > 0.5
+    return out
 
 
 def rectify_mask(bad, map_x, map_y) -> np.ndarray:

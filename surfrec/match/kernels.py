@@ -325,9 +325,73 @@ _TERM_C = np.array([0, 0, 0, 1, 0, 0, 0])
 _TERM_K = np.array([1.0, 1.0, 1.0, 1.0, 0.5, 1.0, 0.5])
 
 
+@njit(cache=True)
+def _reject_outliers(right_coef, u, v, hw, side, order, taus, T, a0, a1, a2, a3, a4, a5, a6, fn, scale, wt, meff,
+                     resid, c, min_count):
+    """Leave out the window pixels whose normalised residual exceeds c robust spreads (per frame).
+
+    Residual r = f / |f| - (g - mean g) / |g - mean g| over the good pixels at the current warp
+    (the zero-normalised SSD's own terms); the spread is 1.4826 times the median |r| (common
+    practice). Returns True when weights changed; when a frame would keep fewer than
+    min_count good pixels nothing is changed and False is returned.
+    """
+    buf = np.empty(side * side)
+    cuts = np.empty(T)
+    for t in range(T):
+        sg = 0.0
+        sgg = 0.0
+        for dy in range(side):
+            ody = dy - hw
+            b1 = a1 + a5 * ody - a4 * hw
+            b2 = 0.5 * a4
+            xa = (u - hw + a0 - a1 * hw + a2 * ody + a3 * taus[t] + 0.5 * a4 * hw * hw
+                  - a5 * hw * ody + 0.5 * a6 * ody * ody)
+            crow = right_coef[t, v - hw + dy]
+            for dx in range(side):
+                if wt[t, dy, dx] == 0.0:
+                    continue
+                x = xa + dx * (1.0 + b1 + b2 * dx)
+                val = _spline3_at(crow, x) if order == 3 else _spline5_at(crow, x)
+                resid[t, dy, dx] = val
+                sg += val
+                sgg += val * val
+        mean = sg / meff[t]
+        norm = np.sqrt(max(sgg - sg * sg / meff[t], 1e-300))
+        k = 0
+        for dy in range(side):
+            for dx in range(side):
+                if wt[t, dy, dx] != 0.0:
+                    r = fn[t, dy, dx] * scale[t] - (resid[t, dy, dx] - mean) / norm
+                    resid[t, dy, dx] = r
+                    buf[k] = abs(r)
+                    k += 1
+        cuts[t] = c * max(1.4826 * np.median(buf[:k]), 1e-12)
+        kept = 0.0
+        for dy in range(side):
+            for dx in range(side):
+                if wt[t, dy, dx] != 0.0 and abs(resid[t, dy, dx]) <= cuts[t]:
+                    kept += 1.0
+        if kept < min_count:
+            return False
+    changed = False
+    for t in range(T):
+        cnt = 0.0
+        for dy in range(side):
+            for dx in range(side):
+                if wt[t, dy, dx] != 0.0:
+                    if abs(resid[t, dy, dx]) > cuts[t]:
+                        wt[t, dy, dx] = 0.0
+                        changed = True
+                    else:
+                        cnt += 1.0
+        meff[t] = cnt
+    return changed
+
+
 @njit(parallel=True, cache=True, fastmath=_FAST)
 def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter, tol, temporal, second,
-                bad_left, bad_right, masked, min_good, out_d, out_p, out_sigma, out_score, out_iter):
+                bad_left, bad_right, masked, min_good, robust_pt, robust_passes, robust_c,
+                out_d, out_p, out_sigma, out_score, out_iter):
     """Inverse-compositional Gauss–Newton refinement of each point's disparity.
 
     Shape function (horizontal; first order, or second order with
@@ -368,6 +432,14 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
         their form with the window's pixel count replaced by the good count).
     min_good : fraction of a window's pixels that must be good in every frame, else the
         point is rejected with out_iter = -2.
+    robust_pt : uint8 (N,) point flags (or any other length: every point's weights come from
+        the masks, no robust pass): bit 1, the window holds bad pixels (its weights come from
+        the masks; without it the weights are all one); bit 2, the point gets up to
+        ``robust_passes`` more passes in which pixels whose residual at the solution exceeds
+        ``robust_c`` robust spreads (1.4826 MAD of the window's residuals, per frame) are
+        left out and the point solved again from where it stood (a skipped, or hard-redescending,
+        M-estimator iterated to its fixed point; Hampel et al., Robust Statistics, 1986): the
+        unsaturated light of a glint, that no threshold on the image finds, is such an outlier.
 
     Outputs (N,): out_d disparity px (NaN when not converged or outside);
     out_p (N, 4) the shape parameters [d, d_u, d_v, d_t]; out_sigma the
@@ -415,9 +487,8 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
         # Per-pixel weights of the window (1 good, 0 bad or the row's padding) and the good count.
         wt = np.zeros((T, side, sidep))
         meff = np.empty(T)
-        if not masked:
-            wt[:, :, :side] = 1.0
-            meff[:] = m
+        resid = np.zeros((T, side, sidep))
+        dirty = True
         for p in range(c * chunk, min(n, (c + 1) * chunk)):
             u = us[p]
             v = vs[p]
@@ -429,11 +500,19 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                 out_p[p, j] = np.nan
             if v - hw < 0 or v + hw >= H or u - hw - 2 < 0 or u + hw + 2 >= W:
                 continue
-            hess[:, :] = 0.0
+            flagged = robust_pt.shape[0] == n
+            weigh = masked and (not flagged or (robust_pt[p] & 1) != 0)
+            if not weigh and dirty:
+                # All-good weights, reset only after they were changed (masks, a robust pass).
+                wt[:, :, :] = 0.0
+                wt[:, :, :side] = 1.0
+                meff[:] = m
+                dirty = False
             flat = False
             shift = np.int64(np.floor(d0[p] + 0.5)) if d0[p] == d0[p] else np.int64(0)
             few = False
-            if masked:
+            if weigh:
+                dirty = True
                 for t in range(T):
                     cnt = 0.0
                     for dy in range(side):
@@ -451,117 +530,6 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
             if few:
                 out_iter[p] = -2
                 continue
-            for t in range(T):
-                s = 0.0
-                for dy in range(side):
-                    lrow = left[t, v - hw + dy, u - hw:u + hw + 1]
-                    wrow = wt[t, dy]
-                    for dx in range(side):
-                        s += lrow[dx] * wrow[dx]
-                mean = s / meff[t]
-                ss = 0.0
-                for j in range(7):
-                    A[t, j] = 0.0
-                    B[t, j] = 0.0
-                mom[:, :] = 0.0
-                # Sums over the window: the dx powers per row, the dy powers from the row totals;
-                # f and g are kept unscaled and their norm applied at the end.
-                for dy in range(side):
-                    row = v - hw + dy
-                    ody = dy - hw
-                    ra0 = 0.0
-                    ra1 = 0.0
-                    ra2 = 0.0
-                    rb0 = 0.0
-                    rb1 = 0.0
-                    rb2 = 0.0
-                    rm0 = 0.0
-                    rm1 = 0.0
-                    rm2 = 0.0
-                    rm3 = 0.0
-                    rm4 = 0.0
-                    # Views starting at the window's first column keep the indices provably
-                    # non-negative (see _spline3_at).
-                    lrow = left[t, row, u - hw:u + hw + 1]
-                    grow = left_gx[t, row, u - hw:u + hw + 1]
-                    frow = fn[t, dy]
-                    gxrow = gx[t, dy]
-                    wrow = wt[t, dy]
-                    for dx in range(side):
-                        f = (lrow[dx] - mean) * wrow[dx]
-                        g = grow[dx] * wrow[dx]
-                        frow[dx] = f
-                        gxrow[dx] = g
-                        ss += f * f
-                        o = offs[dx]
-                        o2 = o * o
-                        gf = g * f
-                        g2 = g * g
-                        ra0 += g
-                        ra1 += g * o
-                        ra2 += g * o2
-                        rb0 += gf
-                        rb1 += gf * o
-                        rb2 += gf * o2
-                        rm0 += g2
-                        rm1 += g2 * o
-                        rm2 += g2 * o2
-                        rm3 += g2 * o2 * o
-                        rm4 += g2 * o2 * o2
-                    A[t, 0] += ra0
-                    A[t, 1] += ra1
-                    A[t, 2] += ody * ra0
-                    A[t, 4] += 0.5 * ra2
-                    A[t, 5] += ody * ra1
-                    A[t, 6] += 0.5 * ody * ody * ra0
-                    B[t, 0] += rb0
-                    B[t, 1] += rb1
-                    B[t, 2] += ody * rb0
-                    B[t, 4] += 0.5 * rb2
-                    B[t, 5] += ody * rb1
-                    B[t, 6] += 0.5 * ody * ody * rb0
-                    yb = 1.0
-                    for b in range(5):
-                        mom[0, b] += yb * rm0
-                        if b <= 3:
-                            mom[1, b] += yb * rm1
-                        if b <= 2:
-                            mom[2, b] += yb * rm2
-                        if b <= 1:
-                            mom[3, b] += yb * rm3
-                        if b == 0:
-                            mom[4, b] += rm4
-                        yb *= ody
-                if ss <= _EPS:
-                    flat = True
-                    break
-                inv = 1.0 / np.sqrt(ss)
-                scale[t] = inv
-                inv2 = inv * inv
-                tau = taus[t]
-                A[t, 3] = tau * A[t, 0]
-                B[t, 3] = tau * B[t, 0]
-                for j in range(7):
-                    A[t, j] *= inv
-                    B[t, j] *= inv2
-                for i in range(npar):
-                    ti = act[i]
-                    for j in range(i, npar):
-                        tj = act[j]
-                        w = _TERM_K[ti] * _TERM_K[tj] * mom[_TERM_A[ti] + _TERM_A[tj], _TERM_B[ti] + _TERM_B[tj]]
-                        cpow = _TERM_C[ti] + _TERM_C[tj]
-                        if cpow == 1:
-                            w *= tau
-                        elif cpow == 2:
-                            w *= tau * tau
-                        hess[i, j] += w * inv2
-            if flat:
-                continue
-            for i in range(npar):
-                for j in range(i):
-                    hess[i, j] = hess[j, i]
-            if not _invert_spd(hess, npar, hinv, work):
-                continue
             a0 = -d0[p]
             a1 = 0.0
             a2 = 0.0
@@ -571,166 +539,291 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
             a6 = 0.0
             converged = False
             bad = False
+            failed = False
             it = 0
             ssd = 0.0
-            for it in range(1, max_iter + 1):
-                for i in range(7):
-                    grad[i] = 0.0
-                ssd = 0.0
+            passes = 1 + (robust_passes if flagged and (robust_pt[p] & 2) != 0 else 0)
+            for rpass in range(passes):
+                hess[:, :] = 0.0
                 for t in range(T):
-                    sg = 0.0
-                    sgg = 0.0
-                    s0 = 0.0
-                    s1 = 0.0
-                    s2 = 0.0
-                    s4 = 0.0
-                    s5 = 0.0
-                    s6 = 0.0
-                    sfg = 0.0
+                    s = 0.0
+                    for dy in range(side):
+                        lrow = left[t, v - hw + dy, u - hw:u + hw + 1]
+                        wrow = wt[t, dy]
+                        for dx in range(side):
+                            s += lrow[dx] * wrow[dx]
+                    mean = s / meff[t]
+                    ss = 0.0
+                    for j in range(7):
+                        A[t, j] = 0.0
+                        B[t, j] = 0.0
+                    mom[:, :] = 0.0
+                    # Sums over the window: the dx powers per row, the dy powers from the row totals;
+                    # f and g are kept unscaled and their norm applied at the end.
                     for dy in range(side):
                         row = v - hw + dy
                         ody = dy - hw
-                        # Along the row the column is x(dx) = i-th sample at
-                        #   xa + dx (1 + b1) + b2 dx^2,  dx = 0 .. 2 hw,
-                        # and x(dx) - dx is a parabola in dx: its extremes lie at the ends or the vertex.
-                        b1 = a1 + a5 * ody - a4 * hw
-                        b2 = 0.5 * a4
-                        xa = (u - hw + a0 - a1 * hw + a2 * ody + a3 * taus[t] + 0.5 * a4 * hw * hw
-                              - a5 * hw * ody + 0.5 * a6 * ody * ody)
-                        e_end = b1 * (2 * hw) + b2 * (2 * hw) * (2 * hw)
-                        e_min = min(0.0, e_end)
-                        e_max = max(0.0, e_end)
-                        if b2 != 0.0:
-                            dv = -b1 / (2.0 * b2)
-                            if 0.0 < dv < 2 * hw:
-                                e_v = b1 * dv + b2 * dv * dv
-                                e_min = min(e_min, e_v)
-                                e_max = max(e_max, e_v)
-                        # The extremes of x(dx) itself, for the bounds.
-                        x_end = xa + (1.0 + b1) * (2 * hw) + b2 * (2 * hw) * (2 * hw)
-                        x_min = min(xa, x_end)
-                        x_max = max(xa, x_end)
-                        if b2 != 0.0:
-                            dv = -(1.0 + b1) / (2.0 * b2)
-                            if 0.0 < dv < 2 * hw:
-                                x_v = xa + (1.0 + b1) * dv + b2 * dv * dv
-                                x_min = min(x_min, x_v)
-                                x_max = max(x_max, x_v)
-                        if x_min < lo or np.floor(x_max) + hi > W - 1 or not (x_min == x_min and x_max == x_max):
+                        ra0 = 0.0
+                        ra1 = 0.0
+                        ra2 = 0.0
+                        rb0 = 0.0
+                        rb1 = 0.0
+                        rb2 = 0.0
+                        rm0 = 0.0
+                        rm1 = 0.0
+                        rm2 = 0.0
+                        rm3 = 0.0
+                        rm4 = 0.0
+                        # Views starting at the window's first column keep the indices provably
+                        # non-negative (see _spline3_at).
+                        lrow = left[t, row, u - hw:u + hw + 1]
+                        grow = left_gx[t, row, u - hw:u + hw + 1]
+                        frow = fn[t, dy]
+                        gxrow = gx[t, dy]
+                        wrow = wt[t, dy]
+                        for dx in range(side):
+                            f = (lrow[dx] - mean) * wrow[dx]
+                            g = grow[dx] * wrow[dx]
+                            frow[dx] = f
+                            gxrow[dx] = g
+                            ss += f * f
+                            o = offs[dx]
+                            o2 = o * o
+                            gf = g * f
+                            g2 = g * g
+                            ra0 += g
+                            ra1 += g * o
+                            ra2 += g * o2
+                            rb0 += gf
+                            rb1 += gf * o
+                            rb2 += gf * o2
+                            rm0 += g2
+                            rm1 += g2 * o
+                            rm2 += g2 * o2
+                            rm3 += g2 * o2 * o
+                            rm4 += g2 * o2 * o2
+                        A[t, 0] += ra0
+                        A[t, 1] += ra1
+                        A[t, 2] += ody * ra0
+                        A[t, 4] += 0.5 * ra2
+                        A[t, 5] += ody * ra1
+                        A[t, 6] += 0.5 * ody * ody * ra0
+                        B[t, 0] += rb0
+                        B[t, 1] += rb1
+                        B[t, 2] += ody * rb0
+                        B[t, 4] += 0.5 * rb2
+                        B[t, 5] += ody * rb1
+                        B[t, 6] += 0.5 * ody * ody * rb0
+                        yb = 1.0
+                        for b in range(5):
+                            mom[0, b] += yb * rm0
+                            if b <= 3:
+                                mom[1, b] += yb * rm1
+                            if b <= 2:
+                                mom[2, b] += yb * rm2
+                            if b <= 1:
+                                mom[3, b] += yb * rm3
+                            if b == 0:
+                                mom[4, b] += rm4
+                            yb *= ody
+                    if ss <= _EPS:
+                        flat = True
+                        break
+                    inv = 1.0 / np.sqrt(ss)
+                    scale[t] = inv
+                    inv2 = inv * inv
+                    tau = taus[t]
+                    A[t, 3] = tau * A[t, 0]
+                    B[t, 3] = tau * B[t, 0]
+                    for j in range(7):
+                        A[t, j] *= inv
+                        B[t, j] *= inv2
+                    for i in range(npar):
+                        ti = act[i]
+                        for j in range(i, npar):
+                            tj = act[j]
+                            w = _TERM_K[ti] * _TERM_K[tj] * mom[_TERM_A[ti] + _TERM_A[tj], _TERM_B[ti] + _TERM_B[tj]]
+                            cpow = _TERM_C[ti] + _TERM_C[tj]
+                            if cpow == 1:
+                                w *= tau
+                            elif cpow == 2:
+                                w *= tau * tau
+                            hess[i, j] += w * inv2
+                if flat:
+                    failed = True
+                    break
+                for i in range(npar):
+                    for j in range(i):
+                        hess[i, j] = hess[j, i]
+                if not _invert_spd(hess, npar, hinv, work):
+                    failed = True
+                    break
+                converged = False
+                bad = False
+                for it in range(1, max_iter + 1):
+                    for i in range(7):
+                        grad[i] = 0.0
+                    ssd = 0.0
+                    for t in range(T):
+                        sg = 0.0
+                        sgg = 0.0
+                        s0 = 0.0
+                        s1 = 0.0
+                        s2 = 0.0
+                        s4 = 0.0
+                        s5 = 0.0
+                        s6 = 0.0
+                        sfg = 0.0
+                        for dy in range(side):
+                            row = v - hw + dy
+                            ody = dy - hw
+                            # Along the row the column is x(dx) = i-th sample at
+                            #   xa + dx (1 + b1) + b2 dx^2,  dx = 0 .. 2 hw,
+                            # and x(dx) - dx is a parabola in dx: its extremes lie at the ends or the vertex.
+                            b1 = a1 + a5 * ody - a4 * hw
+                            b2 = 0.5 * a4
+                            xa = (u - hw + a0 - a1 * hw + a2 * ody + a3 * taus[t] + 0.5 * a4 * hw * hw
+                                  - a5 * hw * ody + 0.5 * a6 * ody * ody)
+                            e_end = b1 * (2 * hw) + b2 * (2 * hw) * (2 * hw)
+                            e_min = min(0.0, e_end)
+                            e_max = max(0.0, e_end)
+                            if b2 != 0.0:
+                                dv = -b1 / (2.0 * b2)
+                                if 0.0 < dv < 2 * hw:
+                                    e_v = b1 * dv + b2 * dv * dv
+                                    e_min = min(e_min, e_v)
+                                    e_max = max(e_max, e_v)
+                            # The extremes of x(dx) itself, for the bounds.
+                            x_end = xa + (1.0 + b1) * (2 * hw) + b2 * (2 * hw) * (2 * hw)
+                            x_min = min(xa, x_end)
+                            x_max = max(xa, x_end)
+                            if b2 != 0.0:
+                                dv = -(1.0 + b1) / (2.0 * b2)
+                                if 0.0 < dv < 2 * hw:
+                                    x_v = xa + (1.0 + b1) * dv + b2 * dv * dv
+                                    x_min = min(x_min, x_v)
+                                    x_max = max(x_max, x_v)
+                            if x_min < lo or np.floor(x_max) + hi > W - 1 or not (x_min == x_min and x_max == x_max):
+                                bad = True
+                                break
+                            r0 = 0.0
+                            r1 = 0.0
+                            r2 = 0.0
+                            crow = right_coef[t, row]
+                            grow = gx[t, dy]
+                            frow = fn[t, dy]
+                            wrow = wt[t, dy]
+                            i0 = np.uint64(max(xa + e_min, 0.0))
+                            if order == 3 and xa + e_min >= 1.0 and np.uint64(xa + e_max) == i0 and \
+                                    i0 + np.uint64(sidep + 2) <= np.uint64(W):
+                                # The usual case: floor(x(dx)) - dx is the same for every dx, so
+                                # the samples fall in consecutive intervals, the taps are
+                                # contiguous loads and the loop vectorises.
+                                seg = crow[i0 - _ONE:i0 + np.uint64(sidep + 2)]
+                                f0 = xa - np.float64(i0)
+                                for dx in range(sidep):
+                                    f = f0 + dx * (b1 + b2 * dx)
+                                    g = 1.0 - f
+                                    f2 = f * f
+                                    f3 = f2 * f
+                                    val = (g * g * g * seg[dx] + (3.0 * f3 - 6.0 * f2 + 4.0) * seg[dx + 1]
+                                           + (-3.0 * f3 + 3.0 * f2 + 3.0 * f + 1.0) * seg[dx + 2]
+                                           + f3 * seg[dx + 3]) * (wrow[dx] / 6.0)
+                                    sg += val
+                                    sgg += val * val
+                                    q = grow[dx] * val
+                                    o = offs[dx]
+                                    r0 += q
+                                    r1 += q * o
+                                    r2 += q * o * o
+                                    sfg += frow[dx] * val
+                            else:
+                                # The same sums as above, written out again: sharing them through a
+                                # buffer of sample values costs the fast path its vectorisation.
+                                for dx in range(side):
+                                    x = xa + dx * (1.0 + b1 + b2 * dx)
+                                    if order == 3:
+                                        val = _spline3_at(crow, x)
+                                    else:
+                                        val = _spline5_at(crow, x)
+                                    val *= wrow[dx]
+                                    sg += val
+                                    sgg += val * val
+                                    q = grow[dx] * val
+                                    o = offs[dx]
+                                    r0 += q
+                                    r1 += q * o
+                                    r2 += q * o * o
+                                    sfg += frow[dx] * val
+                            s0 += r0
+                            s1 += r1
+                            s2 += ody * r0
+                            s4 += 0.5 * r2
+                            s5 += ody * r1
+                            s6 += 0.5 * ody * ody * r0
+                        if bad:
+                            break
+                        ss = sgg - sg * sg / meff[t]
+                        if ss <= _EPS:
                             bad = True
                             break
-                        r0 = 0.0
-                        r1 = 0.0
-                        r2 = 0.0
-                        crow = right_coef[t, row]
-                        grow = gx[t, dy]
-                        frow = fn[t, dy]
-                        wrow = wt[t, dy]
-                        i0 = np.uint64(max(xa + e_min, 0.0))
-                        if order == 3 and xa + e_min >= 1.0 and np.uint64(xa + e_max) == i0 and \
-                                i0 + np.uint64(sidep + 2) <= np.uint64(W):
-                            # The usual case: floor(x(dx)) - dx is the same for every dx, so
-                            # the samples fall in consecutive intervals, the taps are
-                            # contiguous loads and the loop vectorises.
-                            seg = crow[i0 - _ONE:i0 + np.uint64(sidep + 2)]
-                            f0 = xa - np.float64(i0)
-                            for dx in range(sidep):
-                                f = f0 + dx * (b1 + b2 * dx)
-                                g = 1.0 - f
-                                f2 = f * f
-                                f3 = f2 * f
-                                val = (g * g * g * seg[dx] + (3.0 * f3 - 6.0 * f2 + 4.0) * seg[dx + 1]
-                                       + (-3.0 * f3 + 3.0 * f2 + 3.0 * f + 1.0) * seg[dx + 2]
-                                       + f3 * seg[dx + 3]) * (wrow[dx] / 6.0)
-                                sg += val
-                                sgg += val * val
-                                q = grow[dx] * val
-                                o = offs[dx]
-                                r0 += q
-                                r1 += q * o
-                                r2 += q * o * o
-                                sfg += frow[dx] * val
-                        else:
-                            # The same sums as above, written out again: sharing them through a
-                            # buffer of sample values costs the fast path its vectorisation.
-                            for dx in range(side):
-                                x = xa + dx * (1.0 + b1 + b2 * dx)
-                                if order == 3:
-                                    val = _spline3_at(crow, x)
-                                else:
-                                    val = _spline5_at(crow, x)
-                                val *= wrow[dx]
-                                sg += val
-                                sgg += val * val
-                                q = grow[dx] * val
-                                o = offs[dx]
-                                r0 += q
-                                r1 += q * o
-                                r2 += q * o * o
-                                sfg += frow[dx] * val
-                        s0 += r0
-                        s1 += r1
-                        s2 += ody * r0
-                        s4 += 0.5 * r2
-                        s5 += ody * r1
-                        s6 += 0.5 * ody * ody * r0
+                        inv = scale[t]
+                        norm = np.sqrt(ss)
+                        mean = sg / meff[t]
+                        sums[0] = s0
+                        sums[1] = s1
+                        sums[2] = s2
+                        sums[3] = taus[t] * s0
+                        sums[4] = s4
+                        sums[5] = s5
+                        sums[6] = s6
+                        for j in range(7):
+                            grad[j] += B[t, j] - (sums[j] * inv - mean * A[t, j]) / norm
+                        # sum of r^2 with r = f - (g - mean) / norm, since sum f = 0 and sum f^2 = 1
+                        ssd += 2.0 - 2.0 * sfg * inv / norm
                     if bad:
                         break
-                    ss = sgg - sg * sg / meff[t]
-                    if ss <= _EPS:
-                        bad = True
+                    # dp = -H^-1 grad is the template-side update, in the active terms.
+                    for i in range(7):
+                        dp[i] = 0.0
+                    for i in range(npar):
+                        acc = 0.0
+                        for j in range(npar):
+                            acc += hinv[i, j] * grad[act[j]]
+                        dp[act[i]] = -acc
+                    s_old = 1.0 + a1
+                    if not second:
+                        # Composing the inverse of the update into the warp, exactly for the
+                        # first-order warp: a_new = a - s dp / (1 + dp1) for the additive terms.
+                        s_d = 1.0 + dp[1]
+                        a0 = a0 - s_old * dp[0] / s_d
+                        a1 = s_old / s_d - 1.0
+                        a2 = a2 - s_old * dp[2] / s_d
+                        a3 = a3 - s_old * dp[3] / s_d
+                    else:
+                        # The same composition to first order in dp for the second-order warp:
+                        # u_new(x) = u(x) - (1 + du/dx) du_p(x), truncated to second order (the
+                        # fixed point, dp = 0, is the same; only the path to it is approximate).
+                        n0 = a0 - s_old * dp[0]
+                        n1 = a1 - (s_old * dp[1] + a4 * dp[0])
+                        n2 = a2 - (s_old * dp[2] + a5 * dp[0])
+                        n3 = a3 - s_old * dp[3]
+                        n4 = a4 - (s_old * dp[4] + 2.0 * a4 * dp[1])
+                        n5 = a5 - (s_old * dp[5] + a4 * dp[2] + a5 * dp[1])
+                        n6 = a6 - (s_old * dp[6] + 2.0 * a5 * dp[2])
+                        a0, a1, a2, a3, a4, a5, a6 = n0, n1, n2, n3, n4, n5, n6
+                    if abs(dp[0]) < tol and abs(dp[1]) * hw < tol and abs(dp[2]) * hw < tol and \
+                            abs(dp[3]) < tol and abs(dp[4]) * hw * hw < 2.0 * tol and \
+                            abs(dp[5]) * hw * hw < tol and abs(dp[6]) * hw * hw < 2.0 * tol:
+                        converged = True
                         break
-                    inv = scale[t]
-                    norm = np.sqrt(ss)
-                    mean = sg / meff[t]
-                    sums[0] = s0
-                    sums[1] = s1
-                    sums[2] = s2
-                    sums[3] = taus[t] * s0
-                    sums[4] = s4
-                    sums[5] = s5
-                    sums[6] = s6
-                    for j in range(7):
-                        grad[j] += B[t, j] - (sums[j] * inv - mean * A[t, j]) / norm
-                    # sum of r^2 with r = f - (g - mean) / norm, since sum f = 0 and sum f^2 = 1
-                    ssd += 2.0 - 2.0 * sfg * inv / norm
-                if bad:
+                if bad or not converged or rpass == passes - 1:
                     break
-                # dp = -H^-1 grad is the template-side update, in the active terms.
-                for i in range(7):
-                    dp[i] = 0.0
-                for i in range(npar):
-                    acc = 0.0
-                    for j in range(npar):
-                        acc += hinv[i, j] * grad[act[j]]
-                    dp[act[i]] = -acc
-                s_old = 1.0 + a1
-                if not second:
-                    # Composing the inverse of the update into the warp, exactly for the
-                    # first-order warp: a_new = a - s dp / (1 + dp1) for the additive terms.
-                    s_d = 1.0 + dp[1]
-                    a0 = a0 - s_old * dp[0] / s_d
-                    a1 = s_old / s_d - 1.0
-                    a2 = a2 - s_old * dp[2] / s_d
-                    a3 = a3 - s_old * dp[3] / s_d
-                else:
-                    # The same composition to first order in dp for the second-order warp:
-                    # u_new(x) = u(x) - (1 + du/dx) du_p(x), truncated to second order (the
-                    # fixed point, dp = 0, is the same; only the path to it is approximate).
-                    n0 = a0 - s_old * dp[0]
-                    n1 = a1 - (s_old * dp[1] + a4 * dp[0])
-                    n2 = a2 - (s_old * dp[2] + a5 * dp[0])
-                    n3 = a3 - s_old * dp[3]
-                    n4 = a4 - (s_old * dp[4] + 2.0 * a4 * dp[1])
-                    n5 = a5 - (s_old * dp[5] + a4 * dp[2] + a5 * dp[1])
-                    n6 = a6 - (s_old * dp[6] + 2.0 * a5 * dp[2])
-                    a0, a1, a2, a3, a4, a5, a6 = n0, n1, n2, n3, n4, n5, n6
-                if abs(dp[0]) < tol and abs(dp[1]) * hw < tol and abs(dp[2]) * hw < tol and \
-                        abs(dp[3]) < tol and abs(dp[4]) * hw * hw < 2.0 * tol and \
-                        abs(dp[5]) * hw * hw < tol and abs(dp[6]) * hw * hw < 2.0 * tol:
-                    converged = True
+                dirty = True
+                if not _reject_outliers(right_coef, u, v, hw, side, order, taus, T, a0, a1, a2, a3, a4, a5, a6,
+                                        fn, scale, wt, meff, resid, robust_c, max(min_good * m, npar + 3.0)):
                     break
-            if bad or not converged:
+            if failed or bad or not converged:
                 continue
             out_d[p] = -a0
             out_p[p, 0] = -a0

@@ -195,9 +195,19 @@ def match_frame(lefts, rights, taus, grid_u, grid_v, centre, band, params: Match
     d_int, s_int, _ = integer_search(lefts, rights, us, vs, c, band, params.window)
     coef = right_coef if right_coef is not None else row_spline_coefficients(rights, params.spline_order)
     temporal = lefts.shape[0] > 1
+    robust = touched = None
+    if bad_left is not None or bad_right is not None:
+        from surfrec.match.defects import GLINT, near_bad_pixels
+
+        # Only windows that hold bad pixels need per-pixel weights (the right window at the
+        # integer disparity, with 2 px to spare for the warp); windows that hold a glint may
+        # hold its unsaturated light too: they are solved again without outliers.
+        shift = np.rint(np.nan_to_num(d_int, nan=0.0)).astype(np.int64)
+        touched = near_bad_pixels(bad_left, bad_right, us, vs, shift, params.window + 4)
+        robust = touched & near_bad_pixels(bad_left, bad_right, us, vs, shift, params.window + 4, bits=GLINT)
     d, p, sigma, score, iters = refine(lefts, coef, us, vs, d_int, params.window, order=params.spline_order,
                                        taus=taus, temporal=temporal, shape_order=params.shape_order,
-                                       bad_left=bad_left, bad_right=bad_right)
+                                       bad_left=bad_left, bad_right=bad_right, robust=robust, touched=touched)
     shape = uu.shape
     out_d = np.full(shape, np.nan)
     out_s = np.full(shape, np.nan)
@@ -272,3 +282,4 @@ def low_texture(lefts, uu, vv, sigma, good, candidates, params: MatchParams) -> 
 def is_blank(image, min_std: float = 0.005) -> bool:
     """A frame with (almost) no contrast: lens cap, projector off, dropped exposure."""
     return float(np.std(image)) < min_std
+

@@ -81,6 +81,8 @@ class FrameMatches:
     attempted : bool, points inside both views that were matched (a point
         attempted but invalid failed a test: an occluder, a shadow, glare).
     reasons : counts of points rejected by each test.
+    bad_pixels : bool, points whose window holds bad pixels (saturated, hot,
+        dead; rejected or not): near a glint, not an occluder.
     """
 
     disparity: np.ndarray
@@ -88,6 +90,7 @@ class FrameMatches:
     score: np.ndarray
     attempted: np.ndarray
     reasons: dict
+    bad_pixels: np.ndarray | None = None
 
 
 def valid_region(map_x, map_y, source_size) -> np.ndarray:
@@ -252,7 +255,25 @@ def match_frame_on_grid(left, right, grid_u, grid_v, prior: DisparityPrior, wind
     out_d[ok] = d
     out_s[ok] = np.where(bad, np.nan, m.sigma)
     out_c[ok] = m.score
-    return FrameMatches(out_d, out_s, out_c, ok, reasons)
+    out_b = np.zeros(shape, bool)
+    out_b[ok] = m.iterations == -2
+    if bad_left is not None or bad_right is not None:
+        # Points whose window holds bad pixels: where they fail, or fit the still water badly,
+        # the glint is to blame, not an occluder.
+        touched = np.zeros(us.shape, bool)
+        side = (window, window)
+        for mask, shift in ((bad_left, 0), (bad_right, c)):
+            if mask is None:
+                continue
+            box = cv2.boxFilter(np.asarray(mask, np.float32), -1, side, normalize=False,
+                                borderType=cv2.BORDER_CONSTANT)
+            cu = us - shift
+            inside = (cu >= 0) & (cu < box.shape[1])
+            touched[inside] |= box[vs[inside], cu[inside]] > 0
+        near = np.zeros(shape, bool)
+        near[ok] = touched
+        out_b |= near
+    return FrameMatches(out_d, out_s, out_c, ok, reasons, out_b)
 
 
 @dataclass
@@ -262,12 +283,14 @@ class StillMatches:
     disparity, sigma : (F, Nv, Nu) px, NaN where invalid.
     attempted : (F, Nv, Nu) bool (see :class:`FrameMatches`).
     reasons : counts of rejected points by test, summed over the frames.
+    bad_pixels : (F, Nv, Nu) bool (see :class:`FrameMatches`).
     """
 
     disparity: np.ndarray
     sigma: np.ndarray
     attempted: np.ndarray
     reasons: dict
+    bad_pixels: np.ndarray | None = None
 
 
 def match_frames_on_grid(pairs, grid_u, grid_v, prior: DisparityPrior, window: int, *, progress=None,
@@ -287,7 +310,7 @@ def match_frames_on_grid(pairs, grid_u, grid_v, prior: DisparityPrior, window: i
     -------
     StillMatches
     """
-    d, s, a, reasons = [], [], [], {}
+    d, s, a, b, reasons = [], [], [], [], {}
     for i, pair in enumerate(pairs):
         left, right = pair[0], pair[1]
         bad = {"bad_left": pair[2], "bad_right": pair[3]} if len(pair) > 2 else {}
@@ -295,13 +318,14 @@ def match_frames_on_grid(pairs, grid_u, grid_v, prior: DisparityPrior, window: i
         d.append(m.disparity)
         s.append(m.sigma)
         a.append(m.attempted)
+        b.append(m.bad_pixels if m.bad_pixels is not None else np.zeros(m.attempted.shape, bool))
         for k, c in m.reasons.items():
             reasons[k] = reasons.get(k, 0) + c
         if progress is not None:
             progress(i + 1)
     if not d:
         raise ValueError("no frame pairs to match")
-    return StillMatches(np.stack(d), np.stack(s), np.stack(a), reasons)
+    return StillMatches(np.stack(d), np.stack(s), np.stack(a), reasons, np.stack(b))
 
 
 def _ransac_affine(u, v, d, *, tol: float, trials: int = 300, seed: int = 0) -> np.ndarray:
