@@ -348,6 +348,18 @@ def estimate_fixed_defects(frames, *, threshold: float = 6.0, max_area_px: int =
     high = stuck | (np.all(z > floor, axis=0) & (zmed > threshold))
     low = np.all(z < -floor, axis=0) & (zmed < -threshold)
     cand = high | low
+    # Next to saturated pixels (a glint of the still water, masked in every frame anyway) the
+    # speckle is distorted in every frame alike: no test of defects there.
+    sat = np.any(a >= np.float32(SATURATION), axis=0)
+    if sat.any():
+        # Saturated areas only: a stuck hot pixel saturates too.
+        n, labels, stats, _ = cv2.connectedComponentsWithStats(sat.view(np.uint8), connectivity=8)
+        big = stats[:, cv2.CC_STAT_AREA] > max_area_px
+        big[0] = False
+        sat = big[labels]
+    if sat.any():
+        near = cv2.dilate(sat.view(np.uint8), cv2.getStructuringElement(cv2.MORPH_ELLIPSE, (11, 11)))
+        cand &= near == 0
     if not cand.any():
         return cand
     # A defect sits among pixels that follow the speckle; the corner of a fixed structure (a still
