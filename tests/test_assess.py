@@ -31,7 +31,7 @@ def test_true_datum_frame_follows_the_design_convention(truth):
     # A rotation (orthonormal, det +1): numpy.linalg.
     np.testing.assert_allclose(r.T @ r, np.eye(3), atol=1e-12)
     assert np.linalg.det(r) == pytest.approx(1.0, abs=1e-12)
-    # design.md: origin on the left optical axis (camera x = y = 0) ...
+    # docs/conventions.md: origin on the left optical axis (camera x = y = 0) ...
     np.testing.assert_allclose(m[:2, 3], 0.0, atol=1e-9)
     # ... and on the still water z = 0 of the tank: X_tank = R^T (X_cam - t) (truthfile's world_frame text).
     origin_tank = left.rotation.T @ (m[:3, 3] - left.translation)
@@ -255,7 +255,7 @@ def test_truth_comparison_of_exact_and_perturbed_heights(truth):
         # Every node of this grid is seen by both cameras, so coverage = unblanked share.
         assert r["coverage"] == pytest.approx(1 - blank.mean(), abs=1e-12)
         pw = r["plane_wave"]
-        # The waves scenario: 1.0 mm, stepping to 1.1 mm (design.md; truth notes).
+        # The waves scenario: 1.0 mm, stepping to 1.1 mm (docs/synthetic-sessions.md; truth notes).
         tol = 1e-6 if name == "exact" else 2e-3
         assert pw["step_ratio"] == pytest.approx(1.1, abs=tol)
         np.testing.assert_allclose(pw["amplitudes_mm"], [surface.parts[0].amplitude_at(t) for t in times],

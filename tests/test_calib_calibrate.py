@@ -315,7 +315,7 @@ def test_reposing_recovers_the_moved_pose(session, calib, truth):
         assert c.mode == "keep-intrinsics"
         assert rotation_angle_deg(c.rotation @ r_new.T) < 0.1
         assert np.linalg.norm(c.translation - t_new) < 0.5
-        # The move itself (design.md: 0.2 degrees about the optical axis, centre fixed).
+        # The move itself (docs/synthetic-sessions.md: 0.2 degrees about the optical axis, centre fixed).
         assert c.pose_change["rotation_deg"] == pytest.approx(0.2, abs=0.02)
         np.testing.assert_array_equal(c.left_matrix, calib.left_matrix)
         assert c.rms_px < 0.2 and c.epipolar_rms_px < 0.1

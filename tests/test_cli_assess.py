@@ -25,7 +25,7 @@ def files(quick_session, tmp_path_factory):
 def _json(*args):
     res = run_here("assess", *args, "--json")
     assert res.returncode == 0, res.stderr
-    return json.loads(res.stdout)  # one JSON object on stdout (design.md, --json)
+    return json.loads(res.stdout)  # one JSON object on stdout (docs/conventions.md, --json)
 
 
 def test_exact_heights_assess_as_exact(files):
@@ -35,7 +35,7 @@ def test_exact_heights_assess_as_exact(files):
     for g in ("true_geometry", "true_datum_frame"):
         assert r[g]["rms_mm"] < 1e-6 and r[g]["p95_abs_mm"] < 1e-6
     assert r["coverage"] == 1.0 and r["valid_outside_seen"] == 0
-    # The waves scenario's step: 1.0 mm, then 1.1 mm from frame 3 (design.md; truth notes).
+    # The waves scenario's step: 1.0 mm, then 1.1 mm from frame 3 (docs/synthetic-sessions.md; truth notes).
     pw = r["plane_wave"]
     assert pw["step_ratio"] == pytest.approx(1.1, abs=1e-6) and pw["frames_before_step"] == 3
     assert [round(a, 6) for a in pw["amplitudes_mm"]] == [1.0, 1.0, 1.0, 1.1, 1.1, 1.1]

@@ -1,7 +1,7 @@
 """`surfrec calibrate` as a user calls it: exit codes, messages, outputs.
 
-Exit status and one-line errors: design.md ("Exit status"); rig.json
-contract: design.md; accuracy of what it writes against the quick `moved`
+Exit status and one-line errors: docs/conventions.md ("Exit status"); rig.json
+contract: docs/conventions.md; accuracy of what it writes against the quick `moved`
 session's truth (the renderer's cameras; issue 3 targets); the report PNG is
 checked by decoding it with cv2.imread (a general-purpose reference library).
 """
@@ -89,7 +89,7 @@ def test_report_png_is_a_picture(calibrated):
 
 
 def test_json_summary_and_force(session, tmp_path):
-    # One JSON object on stdout (design.md, --json); --force replaces an existing output.
+    # One JSON object on stdout (docs/conventions.md, --json); --force replaces an existing output.
     (tmp_path / "rig.json").write_text("old")
     res = run("calibrate", "--left", session / "target-moved" / "left", "--right", session / "target-moved" / "right",
               "--board", "11x8", "--square", "15", "-o", tmp_path / "rig.json", "--json", "--force", "--workers", "1")

@@ -1,6 +1,6 @@
 """`surfrec check-rig` as a user calls it: exit codes, messages, the JSON summary.
 
-Exit statuses and message forms are fixed by design.md ("Exit status") and
+Exit statuses and message forms are fixed by docs/conventions.md ("Exit status") and
 issue 3; the rigs are the exact cameras of `surfrec synth --quick` sessions.
 """
 

@@ -1,6 +1,6 @@
 """`surfrec datum` as a user calls it: exit codes, messages, the file it writes.
 
-Exit statuses and message forms are fixed by design.md ("Exit status",
+Exit statuses and message forms are fixed by docs/conventions.md ("Exit status",
 "Command line"); the accuracy references are the synthetic truth (the true
 still-water plane z = 0 seen by the exact cameras of a `surfrec synth --quick`
 session) and the targets of issue 4.

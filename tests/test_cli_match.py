@@ -1,4 +1,4 @@
-"""`surfrec match` as a user calls it: outputs, exit codes and messages (design.md error policy)."""
+"""`surfrec match` as a user calls it: outputs, exit codes and messages (docs/conventions.md error policy)."""
 
 import shutil
 
@@ -29,7 +29,7 @@ def test_match_writes_the_contract(prepared):
               s / "waves" / "right", "--timestamps", s / "waves" / "timestamps.csv", "-o", out, "--stop", 4, "-q")
     assert res.returncode == 0, res.stderr
     d = read_disparity(out)
-    # design.md: disparity (T, Nv, Nu) float32, time in s from the first frame, frame_flags uint8.
+    # docs/conventions.md: disparity (T, Nv, Nu) float32, time in s from the first frame, frame_flags uint8.
     assert d["disparity"].shape == (4, len(d["v"]), len(d["u"])) and d["disparity"].dtype == np.float32
     np.testing.assert_allclose(d["time"], np.arange(4) / 500.0, atol=1e-9)
     assert d["frame_flags"].dtype == np.uint8 and not d["frame_flags"].any()
@@ -110,7 +110,7 @@ def test_time_window_and_mask(prepared):
     assert run(*base, "-o", whole).returncode == 0
     res = run(*base, "-o", part, "--start", 2, "--stop", 4)
     assert res.returncode == 0, res.stderr
-    # design.md: a frame's result depends only on the frames of its own time window, so a part of
+    # docs/conventions.md: a frame's result depends only on the frames of its own time window, so a part of
     # the run equals the same frames of the whole run, bit for bit.
     np.testing.assert_array_equal(read_disparity(part)["disparity"], read_disparity(whole)["disparity"][2:4])
     d = read_disparity(whole)

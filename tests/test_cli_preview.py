@@ -1,4 +1,4 @@
-"""`surfrec preview` as a user calls it: the PNG, exit codes and messages (design.md error policy)."""
+"""`surfrec preview` as a user calls it: the PNG, exit codes and messages (docs/conventions.md error policy)."""
 
 
 import cv2

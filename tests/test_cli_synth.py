@@ -20,7 +20,7 @@ def session(tmp_path_factory):
 
 
 def test_quick_session_layout(session):
-    # Layout fixed by design.md, "A synthetic session".
+    # Layout fixed by docs/synthetic-sessions.md.
     out, res = session
     assert res.stdout.strip() == str(out)
     for group, n in (("target", 16), ("still", 3), ("waves", 6)):
@@ -32,7 +32,7 @@ def test_quick_session_layout(session):
     assert lines[0] == "frame,left_s,right_s"
     assert len(lines) == 1 + 6
     t = np.array([float(l.split(",")[1]) for l in lines[1:]])
-    np.testing.assert_allclose(np.diff(t), 1 / 500.0, rtol=1e-9)  # 500 frames/s (design.md)
+    np.testing.assert_allclose(np.diff(t), 1 / 500.0, rtol=1e-9)  # 500 frames/s (docs/synthetic-sessions.md)
     text = (out / "SCENARIO.md").read_text()
     assert "surfrec calibrate" in text and "ripple tank" in text
     assert not list(out.parent.glob(".session.partial-*"))
@@ -51,7 +51,7 @@ def test_truth_file_holds_the_exact_surface(session):
     xx, yy = np.meshgrid(x, y)
     for i, ti in enumerate(g["time"]):
         np.testing.assert_allclose(h[i], surface.height(xx, yy, ti), atol=1e-5)
-    # The amplitude step of the waves scenario: 1.0 mm then 1.1 mm (design.md).
+    # The amplitude step of the waves scenario: 1.0 mm then 1.1 mm (docs/synthetic-sessions.md).
     assert np.nanmax(h[-1] - surface.height(xx, yy, g["time"][-1])) < 1e-5
     tg = t["groups"]["target"]
     assert tg["corners_left"].shape == (16, 88, 2)
@@ -65,7 +65,7 @@ def test_inspect_truth_text_and_json(session):
     s = json.loads(res.stdout)
     assert s["format"] == "surfrec.truth"
     assert s["groups"]["waves"]["frames"] == 6
-    # Baseline of the default rig: cameras at x = -125 and +125 mm (design.md: about 250 mm).
+    # Baseline of the default rig: cameras at x = -125 and +125 mm (docs/synthetic-sessions.md: about 250 mm).
     assert 245 < s["rigs"]["rig"]["baseline_mm"] < 255
     assert s["groups"]["target"]["left_only"] >= 1 and s["groups"]["target"]["right_only"] >= 1
     res = subprocess.run([sys.executable, "-m", "surfrec.cli.main", "inspect", str(out / "truth.h5")],

@@ -8,7 +8,7 @@ References:
 - the true plane in the left camera frame: the camera maps X_cam = R X_world + t,
   so the world's up axis is n = R [0, 0, 1] and the plane z = 0 through the
   world origin has n·X = n·t;
-- the datum-frame convention of design.md (the definition is the reference);
+- the datum-frame convention of docs/conventions.md (the definition is the reference);
 - targets of issue 4: plane normal within 0.05 degrees, offset within 0.2 mm with
   the true rig; the still residual with the true rig below the noise.
 """
@@ -86,7 +86,7 @@ def scatter():
     return {"scenario": sc, "rig": rig, "result": run_datum(lefts, rights, rig)}
 
 
-# ---------------------------------------------------------------- the datum frame (design.md convention)
+# ---------------------------------------------------------------- the datum frame (docs/conventions.md convention)
 
 
 def test_datum_frame_follows_the_convention():

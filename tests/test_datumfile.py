@@ -1,6 +1,6 @@
-"""datum.h5: round trip, the layout design.md fixes, validation that names the key, atomic writing.
+"""datum.h5: round trip, the layout docs/file-formats.md fixes, validation that names the key, atomic writing.
 
-References: the datum.h5 contract of design.md (root attributes
+References: the datum.h5 contract of docs/file-formats.md (root attributes
 world_to_left_camera as 16 row-major values, plane as [nx, ny, nz, d],
 fit_rms_mm, n_frames, the rig's SHA-256; datasets u, v, disparity, valid,
 still_residual on residual_x, residual_y), read back with h5py, the HDF5

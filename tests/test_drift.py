@@ -4,7 +4,7 @@ Outside references: the Fourier shift theorem (scipy.ndimage.fourier_shift
 makes exact sub-pixel shifts of a periodic image); scikit-image's
 phase_cross_correlation (Guizar-Sicairos, Thurman and Fienup, Opt. Lett. 33
 (2008) 156); the noise floor of correlation matching (Pan et al., Opt.
-Express 16 (2008) 7037, quoted in design.md); the pinhole camera model with
+Express 16 (2008) 7037, quoted in docs/conventions.md); the pinhole camera model with
 OpenCV's cv2.projectPoints / cv2.undistortPointsIter.
 """
 

@@ -3,7 +3,7 @@
 References: xarray with the h5netcdf engine, the netCDF4 Python package (which
 bundles the netCDF-C library) and ``ncdump -h`` from Debian's netcdf-bin
 (installed by .ci/run) must open the file with time, y, x as coordinates and
-their units (issue 5; design.md "heights.h5"). CF-1.10 (cfconventions.org):
+their units (issue 5; docs/file-formats.md "heights.h5"). CF-1.10 (cfconventions.org):
 time units "seconds since <date>", flag_masks / flag_meanings for bit fields,
 _FillValue of the variable's type.
 """
@@ -64,7 +64,7 @@ def test_round_trip(sample):
 
 
 def test_layout_chunks_filters_and_scales(sample):
-    # design.md: chunked by frame, HDF5 built-in filters only; dimension scales for time, y, x.
+    # docs/conventions.md: chunked by frame, HDF5 built-in filters only; dimension scales for time, y, x.
     with h5py.File(sample["path"], "r") as f:
         ds = f["height"]
         assert ds.chunks[0] == 1 and ds.compression == "gzip" and ds.shuffle

@@ -69,7 +69,7 @@ def test_heights_summary_matches_numpy(heights, monkeypatch):
     assert s["coverage_percent"]["mean"] == pytest.approx(100 * np.mean(cover), rel=1e-4)
     assert s["coverage_percent"]["min"] == pytest.approx(100 * np.min(cover), rel=1e-4)
     assert s["median_uncertainty_mm"] == pytest.approx(np.median([np.median(x[np.isfinite(x)]) for x in sig]))
-    # The run's clock: 500 frames/s (design.md, the waves scenario).
+    # The run's clock: 500 frames/s (docs/synthetic-sessions.md, the waves scenario).
     assert s["time"]["frame_rate_hz"] == pytest.approx(1 / np.median(np.diff(t))) == pytest.approx(500.0)
     assert s["grid"]["x"]["step_mm"] == 2.5 and s["grid"]["y"]["range_mm"] == [-90.0, 90.0]
     assert s["frame_flags"] == {"clean": 4, "dropped": 1, "unreadable": 0, "blank": 1, "few_valid_points": 0,
@@ -111,7 +111,7 @@ def test_inspect_cli_text_and_json(heights, disparity):
         res = subprocess.run([sys.executable, "-m", "surfrec.cli.main", "inspect", str(path), "--json"],
                              capture_output=True, text=True)
         assert res.returncode == 0, res.stderr
-        assert json.loads(res.stdout)["format"] == fmt  # one JSON object on stdout (design.md)
+        assert json.loads(res.stdout)["format"] == fmt  # one JSON object on stdout (docs/conventions.md)
     res = subprocess.run([sys.executable, "-m", "surfrec.cli.main", "inspect", str(heights)], capture_output=True,
                          text=True)
     assert res.returncode == 0 and "coverage_percent" in res.stdout and "median_uncertainty_mm" in res.stdout

@@ -1,6 +1,6 @@
 """rig.json reading, validation and atomic writing (surfrec.io.rigfile).
 
-Reference: the rig.json contract of design.md ("format": "surfrec.rig",
+Reference: the rig.json contract of docs/file-formats.md ("format": "surfrec.rig",
 version 1; loading validates shapes and finiteness and names the offending
 key; writing is atomic). Valid rectifications come from cv2.stereoRectify.
 """

@@ -41,7 +41,7 @@ def test_left_and_right_see_the_same_pattern_but_their_own_noise():
 
 
 def test_moved_scenario_turns_the_right_camera_by_0p2_degrees():
-    # design.md: the right camera turned 0.2 degrees about its optical axis, centre fixed.
+    # docs/synthetic-sessions.md: the right camera turned 0.2 degrees about its optical axis, centre fixed.
     sc = build_scenario("moved", quick=True, seed=0)
     a, b = sc.rigs["rig"].right, sc.rigs["moved"].right
     rel = b.rotation.T @ a.rotation  # the turn in world coordinates

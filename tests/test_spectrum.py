@@ -114,7 +114,7 @@ def test_wavenumber_on_the_exact_scattered_field_within_one_percent():
 
 
 def test_frequency_wavenumber_spectrum_peak_and_normalisation():
-    # A plane wave exp(i(k.x - omega t)) (design.md's convention) sits at +f, +k; the total power equals the
+    # A plane wave exp(i(k.x - omega t)) (docs/conventions.md's convention) sits at +f, +k; the total power equals the
     # windowed variance (Parseval), also with missing nodes (normalised by the window actually used).
     k, f, dt = 0.2, 10.0, 0.005
     x = np.arange(64) * 2.0
@@ -134,7 +134,7 @@ def test_frequency_wavenumber_spectrum_peak_and_normalisation():
 
 
 def test_harmonic_fit_recovers_a_known_amplitude_with_missing_frames():
-    # h = c0 + Re[A exp(-i omega t)] (design.md's time convention): least squares returns A exactly.
+    # h = c0 + Re[A exp(-i omega t)] (docs/conventions.md's time convention): least squares returns A exactly.
     t = np.arange(40) / 100.0
     a_true = np.array([0.3 - 0.4j, 1.0 + 0.0j])
     h = 0.2 + np.real(a_true[None, :] * np.exp(-1j * 2 * np.pi * 5.0 * t)[:, None])

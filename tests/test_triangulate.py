@@ -44,7 +44,7 @@ def test_agrees_with_cv2_triangulate_points(verged_rig):
     ours = triangulate(u, v, d, rect["Q"], rect["R1"])
     hom = cv2.triangulatePoints(rect["P1"], rect["P2"], np.vstack([u, v]), np.vstack([u - d, v]))
     ref_rect = (hom[:3] / hom[3]).T
-    ref = ref_rect @ rect["R1"]  # back to the left camera frame through R1 transposed (design.md)
+    ref = ref_rect @ rect["R1"]  # back to the left camera frame through R1 transposed (docs/conventions.md)
     rel = np.linalg.norm(ours - ref, axis=1) / np.linalg.norm(ref, axis=1)
     assert rel.max() < 1e-9
 

@@ -1,6 +1,6 @@
 """Accuracy of height fields: against a synthetic session's exact truth, or from the data alone.
 
-Two ways to put a height node into the truth's tank frame (design.md,
+Two ways to put a height node into the truth's tank frame (docs/conventions.md,
 "Conventions"; issue 5):
 
 * **true geometry** — the node (datum-frame x, y, height) goes through the
@@ -114,7 +114,7 @@ def true_datum_frame(camera_rotation, camera_translation, *, origin=(0.0, 0.0), 
 
     The still water is the tank plane z = 0; its normal and offset in the
     left-camera frame go through :func:`surfrec.geometry.datum.datum_frame`,
-    the same construction the datum stage uses (design.md convention).
+    the same construction the datum stage uses (docs/conventions.md convention).
 
     Parameters
     ----------

@@ -2,7 +2,7 @@
 
 Pure computations on numpy arrays (no file I/O); ``surfrec modes`` drives them.
 
-Conventions (design.md): the physical elevation is Re[A(x, y) exp(-i omega t)];
+Conventions (docs/conventions.md): the physical elevation is Re[A(x, y) exp(-i omega t)];
 in polar coordinates (r, theta) about a centre, theta counter-clockwise from
 +x,
 

@@ -32,7 +32,7 @@ The steps, each a pure function on arrays:
 Pixel convention: the centre of the top-left pixel is (0, 0); u to the
 right, v down. ``shift`` is where a left point is found in the right image,
 ``(u_right - u_left, v_right - v_left)``; disparity ``d = -shift_u`` and
-vertical disparity ``dv = -shift_v`` (design.md: d = u_left - u_right).
+vertical disparity ``dv = -shift_v`` (docs/conventions.md: d = u_left - u_right).
 """
 
 from __future__ import annotations

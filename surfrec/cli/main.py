@@ -4,7 +4,7 @@ Subcommands are loaded lazily (one module each in this package) so that
 ``surfrec --help`` and ``surfrec --version`` stay fast: the heavy numerical
 imports happen inside the command that needs them.
 
-Error policy (design.md, "Exit status"): bad usage or bad input gives one
+Error policy (docs/conventions.md, "Exit status"): bad usage or bad input gives one
 line on stderr and exit status 2 (a traceback only with ``--verbose``);
 failures while processing exit 1; a check that ran and failed exits 3.
 """

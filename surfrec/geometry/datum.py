@@ -1,6 +1,6 @@
 """The still-water datum: the plane, the datum (world) frame, the still-water residual and the noise floor.
 
-Datum frame (design.md): origin where the left camera's optical axis meets
+Datum frame (docs/conventions.md): origin where the left camera's optical axis meets
 the still-water plane; z = the plane's unit normal, pointing up toward the
 cameras; x = the left camera's x axis projected onto the plane, normalised;
 y = z × x. Seen from the cameras, x runs to the right of the left image and

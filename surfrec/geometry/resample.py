@@ -1,7 +1,7 @@
 """Heights on a regular datum-frame grid from disparities on the rectified matching grid.
 
 Frames: matches come on a regular grid of the rectified LEFT image (u, v)
-px with disparity d px (design.md); points are triangulated into the left
+px with disparity d px (docs/conventions.md); points are triangulated into the left
 camera frame (mm) and carried into the datum frame (x, y in the still-water
 plane, z = height up toward the cameras, mm) by the inverse of the datum's
 ``world_to_left_camera``. Heights come out on a regular (x, y) grid, mm.

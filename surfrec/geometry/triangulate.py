@@ -1,6 +1,6 @@
 """Triangulation of rectified matches, and its inverse.
 
-Frames and conventions (design.md): a match is given in the rectified LEFT
+Frames and conventions (docs/conventions.md): a match is given in the rectified LEFT
 image as (u, v) px with disparity d = u_left - u_right px. OpenCV's
 reprojection matrix Q (``cv2.stereoRectify``, ``cv2.reprojectImageTo3D``)
 maps it to homogeneous coordinates in the left RECTIFIED frame,

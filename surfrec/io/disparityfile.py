@@ -1,6 +1,6 @@
 """disparity.h5: per-frame disparities on the matching grid ("surfrec.disparity", version 1).
 
-Layout (design.md): ``u`` (Nu), ``v`` (Nv) rectified left-image px of the
+Layout (docs/file-formats.md): ``u`` (Nu), ``v`` (Nv) rectified left-image px of the
 grid; ``time`` (T) s from the first frame; ``disparity``,
 ``disparity_sigma``, ``score`` (T, Nv, Nu) float32 (NaN where invalid);
 ``frame_flags`` (T) uint8 with ``flag_values`` / ``flag_meanings``;

@@ -77,7 +77,7 @@ FLAG_FEW_HEIGHTS = 16
 FLAG_VALUES = (FLAG_DROPPED, FLAG_UNREADABLE, FLAG_BLANK, FLAG_FEW_VALID, FLAG_FEW_HEIGHTS)
 FLAG_MEANINGS = "dropped unreadable blank few_valid_points few_valid_heights"
 
-# netCDF attributes should stay small (design.md): longer numeric arrays are refused.
+# netCDF attributes should stay small (docs/conventions.md): longer numeric arrays are refused.
 MAX_ATTR_VALUES = 256
 # Target size of one compressed-variable chunk, bytes: big enough for gzip to
 # work well, small enough for HDF5's default 1 MiB chunk cache and for readers

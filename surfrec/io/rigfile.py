@@ -1,6 +1,6 @@
 """rig.json: a calibrated stereo rig ("format": "surfrec.rig", "version": 1).
 
-Frames (design.md): the rig frame is the LEFT camera's (x right, y down, z
+Frames (docs/conventions.md): the rig frame is the LEFT camera's (x right, y down, z
 along the optical axis, mm), unrectified; the right camera maps by
 X_right = R X_left + t. Rectified coordinates come back to the rig frame
 through R1 transposed. Disparity d = u_left - u_right in rectified px.

@@ -1,4 +1,4 @@
-"""Write a synthetic session folder (layout in design.md, "A synthetic session").
+"""Write a synthetic session folder (layout in docs/synthetic-sessions.md).
 
 OUTDIR/target/left/frame_00000.png ... OUTDIR/waves/timestamps.csv,
 OUTDIR/truth.h5 and OUTDIR/SCENARIO.md. The folder is assembled under a

@@ -1,7 +1,7 @@
 """Matching a run: grid, band, time windows, validity — one frame at a time.
 
 A frame's result depends only on the frames inside its own time window, the
-rig and the datum (design.md), so any chunking of a run reproduces the
+rig and the datum (docs/conventions.md), so any chunking of a run reproduces the
 sequential result exactly.
 """
 

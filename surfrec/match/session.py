@@ -4,7 +4,7 @@
 matcher options into a :class:`MatchSetup` (grid, band centres, band width,
 mask, rectifier); :func:`match_frames` matches any set of frames with it. A
 frame's result depends only on the frames of its own time window, the rig
-and the datum (design.md), so matching frames 0..99 in one call and 100..199
+and the datum (docs/conventions.md), so matching frames 0..99 in one call and 100..199
 in another gives exactly what one call over 0..199 gives: that is what lets
 ``surfrec run`` cut a run into chunks and process them in parallel.
 

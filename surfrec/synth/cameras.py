@@ -280,7 +280,7 @@ class Projector:
 
 
 def stereo_from_cameras(left: Camera, right: Camera):
-    """Stereo pose of two cameras: X_right = R X_left + t (rig-frame convention of design.md).
+    """Stereo pose of two cameras: X_right = R X_left + t (rig-frame convention of docs/conventions.md).
 
     Returns
     -------

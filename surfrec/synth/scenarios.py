@@ -242,7 +242,7 @@ def _board_views(rng, left: Camera, right: Camera, board: dict, n_central: int, 
 # ------------------------------------------------------------------ scenarios
 
 def build_scenario(name: str = "waves", *, quick: bool = False, seed: int = 0, effects=None) -> Scenario:
-    """Build a named scenario (see design.md, "A synthetic session").
+    """Build a named scenario (see docs/synthetic-sessions.md).
 
     Parameters
     ----------
