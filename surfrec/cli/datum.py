@@ -219,6 +219,7 @@ def _fixed_defects(lf, rf, rig, find, left_path, right_path):
     import numpy as np
 
     from surfrec.errors import InputError
+    from surfrec.io.datumfile import MAX_DEFECT_FRACTION
     from surfrec.io.images import open_frames
     from surfrec.match.defects import estimate_fixed_defects
 
@@ -235,9 +236,9 @@ def _fixed_defects(lf, rf, rig, find, left_path, right_path):
             if len(given) != 1:
                 raise InputError(f"{side} defect map {path}: expected one image, found {len(given)}")
             g = given.read_raw(0) != 0
-            if g.mean() > 0.05:
+            if g.mean() > MAX_DEFECT_FRACTION:
                 raise InputError(f"{side} defect map {path}: marks {100 * g.mean():.1f}% of the pixels defective "
-                                 "(non-zero = defective; more than 5% is not a defect map)")
+                                 f"(non-zero = defective; more than {100 * MAX_DEFECT_FRACTION:g}% is not a defect map)")
             m = g if m is None else (m | g)
         if m is not None:
             log.info("%s camera: %d fixed defects (hot or dead pixels)", side, int(m.sum()))

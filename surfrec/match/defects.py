@@ -7,18 +7,25 @@ halo in which the glint's light still adds to the speckle. Such pixels would
 pull a window's ZNCC down and drag its sub-pixel estimate, so the matcher
 leaves them out of the window sums (surfrec.match.kernels.icgn_refine).
 
-Three steps per frame, on the original (unrectified) camera image:
+Three steps per frame, on the original (unrectified) camera image
+(:func:`prepare_frame`):
 
-1. :func:`bad_pixel_mask`: saturated pixels, plus the camera's fixed defect
-   map (estimated from the still-water frames by
-   :func:`estimate_fixed_defects`, or given by the user), grown by a halo;
+1. :meth:`DefectSettings.coded_mask`: saturated pixels grown over the
+   glint's unsaturated shoulder (:func:`glint_shoulders`), coded GLINT, and
+   the camera's fixed defects (estimated from the still-water frames by
+   :func:`estimate_fixed_defects`, or given by the user), coded DEFECT, both
+   grown by a halo (:func:`bad_pixel_mask`);
 2. :func:`fill_bad_pixels`: those pixels replaced by a smooth fill from their
-   good neighbours (normalised convolution, Knutsson & Westin, CVPR 1993), so
-   that the rectification's spline and the integer search see no extreme
-   values — the fill carries no speckle, so it adds little correlation either
-   way, and the refinement leaves the pixels out entirely;
-3. the mask is carried into the rectified view with the frame (a pixel is
-   bad there when any of the original pixels it is interpolated from is).
+   good neighbours, so that the rectification's spline and the integer
+   search see no extreme values — the fill carries no speckle, and the
+   refinement leaves the pixels out entirely;
+3. the mask is carried into the rectified view with the frame, bit by bit
+   (:func:`rectify_mask`: a pixel is bad there when any of the original
+   pixels it is interpolated from is).
+
+The matcher then gives per-pixel weights only to windows that hold bad
+pixels, and solves the windows that hold a glint again without their outlier
+pixels (:func:`near_bad_pixels` picks them).
 
 The steps use OpenCV's morphology and Gaussian filters; what is ours is the
 rule for which pixels are bad.
@@ -29,8 +36,8 @@ from __future__ import annotations
 import cv2
 import numpy as np
 
-__all__ = ["DefectSettings", "bad_pixel_mask", "fill_bad_pixels", "estimate_fixed_defects", "rectify_mask",
-           "prepare_frame"]
+__all__ = ["DefectSettings", "bad_pixel_mask", "glint_shoulders", "fill_bad_pixels", "estimate_fixed_defects",
+           "rectify_mask", "prepare_frame", "near_bad_pixels", "GLINT", "DEFECT"]
 
 # Defaults (recorded in disparity.h5 with the other matcher settings).
 GLINT = 1  # mask bit: saturated, or the unsaturated shoulder of a saturated area
@@ -59,10 +66,6 @@ class DefectSettings:
         self.saturation = saturation
         self.halo_px = int(halo_px)
         self.fixed = {"left": _as_mask(fixed_left), "right": _as_mask(fixed_right)}
-
-    def mask(self, frame, side: str) -> np.ndarray:
-        """Bad-pixel mask (bool, original px) of one frame of ``side``."""
-        return bad_pixel_mask(frame, saturation=self.saturation, fixed=self.fixed[side], halo_px=self.halo_px)
 
     def coded_mask(self, frame, side: str) -> np.ndarray:
         """Bad pixels of one frame coded by cause (uint8, original px): GLINT | DEFECT bits, 0 good."""

@@ -260,18 +260,10 @@ def match_frame_on_grid(left, right, grid_u, grid_v, prior: DisparityPrior, wind
     if bad_left is not None or bad_right is not None:
         # Points whose window holds bad pixels: where they fail, or fit the still water badly,
         # the glint is to blame, not an occluder.
-        touched = np.zeros(us.shape, bool)
-        side = (window, window)
-        for mask, shift in ((bad_left, 0), (bad_right, c)):
-            if mask is None:
-                continue
-            box = cv2.boxFilter(np.asarray(mask, np.float32), -1, side, normalize=False,
-                                borderType=cv2.BORDER_CONSTANT)
-            cu = us - shift
-            inside = (cu >= 0) & (cu < box.shape[1])
-            touched[inside] |= box[vs[inside], cu[inside]] > 0
+        from surfrec.match.defects import near_bad_pixels
+
         near = np.zeros(shape, bool)
-        near[ok] = touched
+        near[ok] = near_bad_pixels(bad_left, bad_right, us, vs, c, window)
         out_b |= near
     return FrameMatches(out_d, out_s, out_c, ok, reasons, out_b)
 
