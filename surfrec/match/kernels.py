@@ -327,16 +327,15 @@ _TERM_K = np.array([1.0, 1.0, 1.0, 1.0, 0.5, 1.0, 0.5])
 
 @njit(cache=True)
 def _reject_outliers(right_coef, u, v, hw, side, order, taus, T, a0, a1, a2, a3, a4, a5, a6, fn, scale, wt, meff,
-                     resid, c, min_count):
+                     resid, c, min_count, buf, cuts):
     """Leave out the window pixels whose normalised residual exceeds c robust spreads (per frame).
 
     Residual r = f / |f| - (g - mean g) / |g - mean g| over the good pixels at the current warp
     (the zero-normalised SSD's own terms); the spread is 1.4826 times the median |r| (common
     practice). Returns True when weights changed; when a frame would keep fewer than
-    min_count good pixels nothing is changed and False is returned.
+    min_count good pixels nothing is changed and False is returned. buf (side^2,) and cuts (T,)
+    are scratch arrays (allocated once per chunk of points).
     """
-    buf = np.empty(side * side)
-    cuts = np.empty(T)
     for t in range(T):
         sg = 0.0
         sgg = 0.0
@@ -488,6 +487,8 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
         wt = np.zeros((T, side, sidep))
         meff = np.empty(T)
         resid = np.zeros((T, side, sidep))
+        rbuf = np.empty(side * side)
+        rcuts = np.empty(T)
         dirty = True
         for p in range(c * chunk, min(n, (c + 1) * chunk)):
             u = us[p]
@@ -821,7 +822,8 @@ def icgn_refine(left, left_gx, right_coef, taus, us, vs, d0, hw, order, max_iter
                     break
                 dirty = True
                 if not _reject_outliers(right_coef, u, v, hw, side, order, taus, T, a0, a1, a2, a3, a4, a5, a6,
-                                        fn, scale, wt, meff, resid, robust_c, max(min_good * m, npar + 3.0)):
+                                        fn, scale, wt, meff, resid, robust_c, max(min_good * m, npar + 3.0),
+                                        rbuf, rcuts):
                     break
             if failed or bad or not converged:
                 continue
